@@ -1,0 +1,4 @@
+"""python -m nnlint."""
+from nnlint.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,1 @@
+"""Framework knowledge for the dropout rules (canonical names -> roles)."""

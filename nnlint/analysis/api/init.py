@@ -1,0 +1,1 @@
+"""Framework knowledge for the init rules (canonical names -> roles)."""

@@ -1,0 +1,1 @@
+"""Framework knowledge for the losses rules (canonical names -> roles)."""

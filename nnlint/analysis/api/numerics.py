@@ -1,0 +1,1 @@
+"""Framework knowledge for the numerics rules (canonical names -> roles)."""

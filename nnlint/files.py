@@ -1,0 +1,90 @@
+"""Finding files to check, reading them, and decoding their bytes to text."""
+from __future__ import annotations
+
+import fnmatch
+import io
+import os
+import tokenize
+from typing import Iterable, Iterator
+
+#: folder names never descended into (build outputs, caches, environments; common practice)
+SKIPPED_FOLDERS = frozenset({
+    "__pycache__", "node_modules", "build", "dist", "site-packages", "venv", "env",
+    "_build", "htmlcov", "wandb", "mlruns", "lightning_logs",
+})
+SOURCE_SUFFIXES = (".py",)
+
+
+class DecodeError(Exception):
+    """The bytes are not text in the declared (or default UTF-8) encoding."""
+
+
+def decode(data: bytes) -> str:
+    """Decode source bytes as Python does: BOM, PEP 263 cookie, else UTF-8."""
+    try:
+        encoding, _ = tokenize.detect_encoding(io.BytesIO(data).readline)
+    except SyntaxError as error:
+        raise DecodeError(f"cannot decode: {error.msg}") from None
+    try:
+        return data.decode(encoding)
+    except UnicodeDecodeError as error:
+        line = data.count(b"\n", 0, error.start) + 1
+        raise DecodeError(f"cannot decode as {encoding} (byte {error.start}, "
+                          f"line {line})") from None
+    except LookupError:
+        raise DecodeError(f"unknown encoding {encoding!r}") from None
+
+
+def matches_any(path: str, patterns: Iterable[str], root: str) -> bool:
+    """True when `path` (or its name) matches a glob, relative to `root` or anywhere below."""
+    relative = os.path.relpath(path, root).replace(os.sep, "/")
+    name = os.path.basename(path)
+    for pattern in patterns:
+        pattern = pattern.rstrip("/")
+        if (fnmatch.fnmatchcase(relative, pattern) or fnmatch.fnmatchcase(name, pattern)
+                or fnmatch.fnmatchcase(relative, pattern + "/*")):
+            return True
+    return False
+
+
+def _is_environment(folder: str) -> bool:
+    return os.path.isfile(os.path.join(folder, "pyvenv.cfg"))
+
+
+def discover(paths: Iterable[str], exclude: Iterable[str] = (), root: str = ".",
+             suffixes: tuple[str, ...] = SOURCE_SUFFIXES) -> Iterator[str]:
+    """Yield the files to check, in sorted order, each once.
+
+    Explicit file arguments are kept unless excluded; folders are walked without following
+    symlinked folders, skipping hidden folders, environments and build outputs.
+    """
+    exclude = tuple(exclude)
+    seen: set[str] = set()
+    for given in paths:
+        if os.path.isdir(given):
+            for found in _walk(given, exclude, root, suffixes):
+                if found not in seen:
+                    seen.add(found)
+                    yield found
+        elif not matches_any(given, exclude, root) and given not in seen:
+            seen.add(given)
+            yield given
+
+
+def _walk(top: str, exclude: tuple[str, ...], root: str,
+          suffixes: tuple[str, ...]) -> Iterator[str]:
+    for folder, subfolders, names in os.walk(top):
+        subfolders[:] = sorted(
+            sub for sub in subfolders
+            if not sub.startswith(".") and sub not in SKIPPED_FOLDERS
+            and not sub.endswith(".egg-info")
+            and not _is_environment(os.path.join(folder, sub))
+            and not matches_any(os.path.join(folder, sub), exclude, root)
+        )
+        for name in sorted(names):
+            if not name.endswith(suffixes):
+                continue
+            path = os.path.join(folder, name)
+            if matches_any(path, exclude, root):
+                continue
+            yield os.path.normpath(path)

@@ -1,0 +1,52 @@
+"""Finding and Severity: what a rule reports, as plain picklable data."""
+from __future__ import annotations
+
+import enum
+from dataclasses import dataclass
+
+
+class Severity(str, enum.Enum):
+    """How sure a rule is that the code is wrong."""
+
+    #: the code is wrong
+    ERROR = "error"
+    #: likely wrong; context may justify it
+    WARNING = "warning"
+
+
+@dataclass(frozen=True, order=True)
+class Finding:
+    """One reported hazard. Lines and columns are 1-based."""
+
+    path: str
+    #: 0-based index of the notebook cell among all cells, None for .py files
+    cell: int | None
+    line: int
+    column: int
+    code: str
+    name: str
+    severity: Severity
+    message: str
+    end_line: int | None = None
+    end_column: int | None = None
+    #: True when `nnlint fix` has a rewrite for this finding
+    fixable: bool = False
+
+    def sort_key(self) -> tuple:
+        cell = -1 if self.cell is None else self.cell
+        return (self.path, cell, self.line, self.column, self.code, self.message)
+
+    def to_json(self) -> dict:
+        """The DESIGN §5 JSON object (a contract: do not rename fields)."""
+        return {
+            "path": self.path,
+            "line": self.line,
+            "column": self.column,
+            "end_line": self.end_line,
+            "end_column": self.end_column,
+            "code": self.code,
+            "name": self.name,
+            "severity": self.severity.value,
+            "message": self.message,
+            "cell": self.cell,
+        }

@@ -1,0 +1,1 @@
+"""Dropout rules (NNL1xx)."""

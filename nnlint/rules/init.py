@@ -1,0 +1,1 @@
+"""Initialization rules (NNL2xx)."""

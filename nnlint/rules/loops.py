@@ -1,0 +1,1 @@
+"""Training-loop rules (NNL6xx)."""

@@ -1,0 +1,1 @@
+"""Loss-pairing rules (NNL5xx)."""

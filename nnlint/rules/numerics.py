@@ -1,0 +1,1 @@
+"""Numerical-stability rules (NNL3xx)."""
