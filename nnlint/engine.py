@@ -181,7 +181,7 @@ def _place(reports: list[Report], module: cst.Module, path: str) -> list[Finding
             continue
         seen.add(key)
         findings.append(Finding(path, None, line, column, report.rule.code, report.rule.name,
-                                report.rule.severity, report.message, end_line, end_column))
+                                report.severity, report.message, end_line, end_column))
     return findings
 
 

@@ -16,13 +16,16 @@ if TYPE_CHECKING:
 class Report:
     """A finding before positions are known: the node and the finished message."""
 
-    __slots__ = ("rule", "node", "message", "line", "column")
+    __slots__ = ("rule", "node", "message", "line", "column", "severity")
 
     def __init__(self, rule: type["Rule"], node: cst.CSTNode | None, message: str,
-                 line: int | None = None, column: int | None = None) -> None:
+                 line: int | None = None, column: int | None = None,
+                 severity: Severity | None = None) -> None:
         self.rule = rule
         self.node = node
         self.message = message
+        #: overrides the rule's default severity for this one finding (None: the rule's)
+        self.severity = severity or rule.severity
         #: explicit 1-based position, used when there is no node (parse errors)
         self.line = line
         self.column = column
@@ -55,9 +58,15 @@ class Rule:
         self.context = context
         self._sink = sink
 
-    def report(self, node: cst.CSTNode, **fields: object) -> None:
-        """Record a finding at `node`; the message is the template filled with `fields`."""
-        self._sink.append(Report(type(self), node, self.message.format(**fields)))
+    def report(self, node: cst.CSTNode, severity: Severity | None = None,
+               **fields: object) -> None:
+        """Record a finding at `node`; the message is the template filled with `fields`.
+
+        `severity` overrides the rule's default for this finding (for rules whose certainty
+        depends on what is known, e.g. a warning that becomes an error with more evidence).
+        """
+        self._sink.append(Report(type(self), node, self.message.format(**fields),
+                                 severity=severity))
 
     @classmethod
     def message_fields(cls) -> set[str]:
