@@ -6,6 +6,7 @@ other rules' findings are kept. NNLINT_STRICT=1 (set by the tests) makes such bu
 """
 from __future__ import annotations
 
+import dataclasses
 import os
 import re
 import stat
@@ -22,6 +23,7 @@ from nnlint.cache import ResultCache
 from nnlint.analysis.api import FRAMEWORK_PACKAGES
 from nnlint.analysis.model import ModuleModel
 from nnlint.analysis.project import ProjectIndex, package_of
+from nnlint.analysis.walk import TRACKED_TYPES as _TRACKED_TYPES
 from nnlint.analysis.walk import WalkContext
 from nnlint.config import Settings, with_default_ignores
 from nnlint.files import DecodeError, decode, discover, split_lines
@@ -70,37 +72,86 @@ class FileResult:
     messages: list[str] = field(default_factory=list)
 
 
-class Dispatcher(cst.CSTVisitor):
-    """One libcst walk that calls every enabled rule's visit_*/leave_* methods."""
+#: node fields that hold only layout (whitespace, brackets, separators): never walked
+_LAYOUT_FIELDS = frozenset({
+    "lpar", "rpar", "comma", "semicolon", "colon", "first_colon", "second_colon", "equal",
+    "dot", "leading_lines", "lines_after_decorators", "header", "footer", "indent",
+    "trailing_whitespace", "encoding", "default_indent", "default_newline",
+    "has_trailing_newline", "relative", "lbracket", "rbracket", "lbrace", "rbrace",
+    "asynchronous", "star", "conversion", "newline", "lsqb", "rsqb",
+})
+_CHILD_FIELDS: dict[type, tuple[str, ...]] = {}
+
+
+def _child_fields(node_type: type) -> tuple[str, ...]:
+    """The fields of a node type that can hold meaningful child nodes, in source order."""
+    fields = _CHILD_FIELDS.get(node_type)
+    if fields is None:
+        names = [field.name for field in dataclasses.fields(node_type)
+                 if field.name not in _LAYOUT_FIELDS and not field.name.startswith("whitespace")]
+        if "decorators" in names:  # decorators come first in the source
+            names.remove("decorators")
+            names.insert(0, "decorators")
+        fields = _CHILD_FIELDS[node_type] = tuple(names)
+    return fields
+
+
+class Dispatcher:
+    """One walk of the tree that calls every enabled rule's visit_*/leave_* methods.
+
+    The walk is ours, not libcst's `visit`: libcst rebuilds every node on the way back up
+    even for read-only visitors, and visits every whitespace and bracket. This one is
+    iterative (no recursion limit), skips layout-only fields, and reaches every other node
+    in source order, calling `visit_<Node>` before its children and `leave_<Node>` after.
+    """
 
     def __init__(self, rules: Sequence[Rule], context: WalkContext,
-                 on_error: "callable") -> None:
-        super().__init__()
+                 on_error: Callable[[str, Exception], None]) -> None:
         self.context = context
         self._on_error = on_error
-        self._visits: dict[str, list] = {}
-        self._leaves: dict[str, list] = {}
+        self._visits: dict[type, list] = {}
+        self._leaves: dict[type, list] = {}
         for rule in rules:
-            for type_name, method in _visit_methods(type(rule), "visit_"):
-                self._visits.setdefault(type_name, []).append((rule, method))
-            for type_name, method in _visit_methods(type(rule), "leave_"):
-                self._leaves.setdefault(type_name, []).append((rule, method))
+            for node_type, method in _visit_methods(type(rule), "visit_"):
+                self._visits.setdefault(node_type, []).append((rule, method))
+            for node_type, method in _visit_methods(type(rule), "leave_"):
+                self._leaves.setdefault(node_type, []).append((rule, method))
         self._broken: set[str] = set()
 
-    def on_visit(self, node: cst.CSTNode) -> bool:
-        self.context.enter(node)
-        handlers = self._visits.get(type(node).__name__)
-        if handlers:
-            self._call(handlers, node)
-        self.context.ancestors.append(node)
-        return True
-
-    def on_leave(self, original_node: cst.CSTNode) -> None:
-        self.context.ancestors.pop()
-        handlers = self._leaves.get(type(original_node).__name__)
-        if handlers:
-            self._call(handlers, original_node)
-        self.context.leave(original_node)
+    def walk(self, module: cst.Module) -> None:
+        context = self.context
+        ancestors = context.ancestors
+        visits, leaves = self._visits, self._leaves
+        tracked = _TRACKED_TYPES
+        node_base = cst.CSTNode
+        #: (node, leaving) pairs; a node is pushed again as "leaving" before its children
+        stack: list[tuple[cst.CSTNode, bool]] = [(module, False)]
+        while stack:
+            node, leaving = stack.pop()
+            node_type = type(node)
+            if leaving:
+                ancestors.pop()
+                handlers = leaves.get(node_type)
+                if handlers:
+                    self._call(handlers, node)
+                if node_type in tracked:
+                    context.leave(node)
+                continue
+            if node_type in tracked:
+                context.enter(node)
+            handlers = visits.get(node_type)
+            if handlers:
+                self._call(handlers, node)
+            ancestors.append(node)
+            stack.append((node, True))
+            children: list[cst.CSTNode] = []
+            for name in _child_fields(node_type):
+                value = getattr(node, name)
+                if isinstance(value, node_base):
+                    children.append(value)
+                elif type(value) in (tuple, list):
+                    children.extend(item for item in value if isinstance(item, node_base))
+            stack.extend((child, False) for child in reversed(children))
 
     def _call(self, handlers: list, node: cst.CSTNode) -> None:
         for rule, method in handlers:
@@ -119,12 +170,17 @@ _METHOD_CACHE: dict[tuple[type, str], list] = {}
 
 
 def _visit_methods(rule_class: type, prefix: str) -> list:
+    """(node type, unbound method) pairs for a rule's visit_*/leave_* methods."""
     key = (rule_class, prefix)
     if key not in _METHOD_CACHE:
         found = []
         for attribute in dir(rule_class):
             if attribute.startswith(prefix):
-                found.append((attribute[len(prefix):], getattr(rule_class, attribute)))
+                node_type = getattr(cst, attribute[len(prefix):], None)
+                if not isinstance(node_type, type):
+                    raise TypeError(f"{rule_class.__name__}.{attribute}: libcst has no node "
+                                    f"type {attribute[len(prefix):]!r}")
+                found.append((node_type, getattr(rule_class, attribute)))
         _METHOD_CACHE[key] = found
     return _METHOD_CACHE[key]
 
@@ -155,7 +211,7 @@ def analyse_module(module: cst.Module, text: str, path: str, settings: Settings,
         result.errors.append(InternalError(path, code, f"{type(error).__name__}: {error} "
                                                        f"({where})"))
 
-    module.visit(Dispatcher(rules, context, on_error))
+    Dispatcher(rules, context, on_error).walk(module)
     if sink:
         result.findings = _place(sink, module, path)
         if apply_noqa:
@@ -213,8 +269,7 @@ def lint_text(text: str, path: str = "<string>", settings: Settings | None = Non
     result = FileResult(path)
     if text.startswith("\ufeff"):
         text = text[1:]
-    lines = split_lines(text)
-    if noqa.file_is_skipped(lines) or not wants_analysis(text):
+    if not wants_analysis(text) or ("flake8" in text and noqa.file_is_skipped(split_lines(text))):
         return result
     try:
         module = parse(text)
