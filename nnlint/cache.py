@@ -124,11 +124,10 @@ def _atomic_write(folder: Path, name: str, text: str) -> None:
 def _record(finding: Finding) -> dict:
     data = finding.to_json()
     data.pop("path")
-    data["fixable"] = finding.fixable
     return data
 
 
 def _finding(path: str, data: dict) -> Finding:
     return Finding(path, data["cell"], data["line"], data["column"], data["code"], data["name"],
                    Severity(data["severity"]), data["message"], data["end_line"],
-                   data["end_column"], data.get("fixable", False))
+                   data["end_column"], data["fix"])

@@ -33,22 +33,21 @@ def _parser() -> argparse.ArgumentParser:
                        help="files or folders to check (default: the current folder)")
     check.add_argument("--format", choices=FORMATS, default="text",
                        help="output format (default: text, `path:line:col: CODE message`)")
-    check.add_argument("--select", metavar="CODES",
-                       help="comma-separated code prefixes to report (default: all on by default)")
-    check.add_argument("--ignore", metavar="CODES", help="comma-separated code prefixes to skip")
-    check.add_argument("--exclude", metavar="GLOBS", help="comma-separated globs of paths to skip")
-    check.add_argument("--per-file-ignores", metavar="PAIRS",
-                       help='space-separated "glob:CODES" pairs, as in flake8')
-    check.add_argument("--precision", choices=PRECISIONS,
-                       help="float format the arithmetic runs in (default: from the code, "
-                            "else float32)")
-    check.add_argument("--config", metavar="PYPROJECT",
-                       help="read [tool.nnlint] from this file instead of searching for one")
+    _add_selection_flags(check)
     check.add_argument("--no-cache", action="store_true",
                        help=f"do not read or write the result cache ({FOLDER_NAME}/ under the "
                             f"project root; delete that folder to clear it)")
     check.add_argument("-j", "--jobs", type=_positive_int, default=None, metavar="N",
                        help="worker processes (default: all CPUs; output does not depend on it)")
+
+    fix = commands.add_parser("fix", help="apply the safe automatic fixes",
+                              description="Rewrite findings that have one unambiguous fix; "
+                                          "everything else in the file stays byte-identical.")
+    fix.add_argument("paths", nargs="*", default=["."], metavar="PATH",
+                     help="files or folders to fix (default: the current folder)")
+    fix.add_argument("--diff", action="store_true",
+                     help="print a unified diff of the fixes and write nothing")
+    _add_selection_flags(fix)
 
     rules = commands.add_parser("rules", help="list the rules",
                                 description="List every rule: code, name, severity, summary.")
@@ -58,6 +57,23 @@ def _parser() -> argparse.ArgumentParser:
                                   description="Print a rule's rationale, examples and references.")
     explain.add_argument("code", metavar="CODE", help="a rule code (NNL301) or name")
     return parser
+
+
+def _add_selection_flags(command: argparse.ArgumentParser) -> None:
+    command.add_argument("--select", metavar="CODES",
+                         help="comma-separated code prefixes to report (default: all on by "
+                              "default)")
+    command.add_argument("--ignore", metavar="CODES",
+                         help="comma-separated code prefixes to skip")
+    command.add_argument("--exclude", metavar="GLOBS",
+                         help="comma-separated globs of paths to skip")
+    command.add_argument("--per-file-ignores", metavar="PAIRS",
+                         help='space-separated "glob:CODES" pairs, as in flake8')
+    command.add_argument("--precision", choices=PRECISIONS,
+                         help="float format the arithmetic runs in (default: from the code, "
+                              "else float32)")
+    command.add_argument("--config", metavar="PYPROJECT",
+                         help="read [tool.nnlint] from this file instead of searching for one")
 
 
 def _positive_int(text: str) -> int:
@@ -75,6 +91,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     arguments = parser.parse_args(argv)
     if arguments.command == "check":
         return _check(arguments)
+    if arguments.command == "fix":
+        return _fix(arguments)
     if arguments.command == "rules":
         return _rules(arguments.format)
     if arguments.command == "explain":
@@ -153,6 +171,47 @@ class Progress:
         if self.shown:
             self.stream.write("\r\x1b[K")
             self.stream.flush()
+
+
+def _fix(arguments: argparse.Namespace) -> int:
+    from nnlint.analysis.project import ProjectIndex
+    from nnlint.files import discover
+    from nnlint.fix import fix_file
+    from nnlint.report import text as text_report
+
+    try:
+        settings = _settings(arguments)
+    except ConfigError as error:
+        print(error, file=sys.stderr)
+        return EXIT_ERROR
+    messages = [f"nnlint: {path}: no such file or folder" for path in arguments.paths
+                if not os.path.lexists(path)]
+    project = ProjectIndex(settings)
+    changed_files = fixed_count = 0
+    remaining = []
+    for path in discover([p for p in arguments.paths if os.path.lexists(p)], settings.exclude,
+                         settings.root):
+        result = fix_file(path, settings, project, write=not arguments.diff)
+        messages += result.messages
+        remaining += result.remaining
+        if result.changed:
+            changed_files += 1
+            fixed_count += len(result.applied)
+            if arguments.diff:
+                sys.stdout.write(result.diff())
+    if not arguments.diff:
+        sys.stdout.write(text_report.render(remaining))
+    for message in messages:
+        print(message, file=sys.stderr)
+    verb = "would fix" if arguments.diff else "fixed"
+    print(f"nnlint: {verb} {fixed_count} finding{'s' if fixed_count != 1 else ''} in "
+          f"{changed_files} file{'s' if changed_files != 1 else ''}; "
+          f"{len(remaining)} remain", file=sys.stderr)
+    if messages:
+        return EXIT_ERROR
+    if arguments.diff:
+        return EXIT_FINDINGS if changed_files else EXIT_CLEAN
+    return EXIT_FINDINGS if remaining else EXIT_CLEAN
 
 
 def _is_terminal(stream) -> bool:

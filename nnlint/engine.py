@@ -29,7 +29,7 @@ from nnlint.config import Settings, with_default_ignores
 from nnlint.files import DecodeError, decode, discover, split_lines
 from nnlint.finding import Finding
 from nnlint.parsing import ParseFailure, parse
-from nnlint.rules.base import Report, Rule, all_rules, get_rule
+from nnlint.rules.base import Fix, Report, Rule, all_rules, get_rule
 
 PARSE_ERROR = "NNL001"
 
@@ -70,6 +70,8 @@ class FileResult:
     errors: list[InternalError] = field(default_factory=list)
     #: one-line messages for the user (unreadable file, ...), shown on stderr
     messages: list[str] = field(default_factory=list)
+    #: (finding, rewrite) pairs; only filled for `nnlint fix` (CST nodes stay in-process)
+    fixes: list[tuple[Finding, Fix]] = field(default_factory=list)
 
 
 #: node fields that hold only layout (whitespace, brackets, separators): never walked
@@ -192,12 +194,12 @@ def enabled_rules(settings: Settings, path: str) -> list[type[Rule]]:
 
 def analyse_module(module: cst.Module, text: str, path: str, settings: Settings,
                    project: ProjectIndex | None, package: str | None = None,
-                   apply_noqa: bool = True) -> FileResult:
+                   apply_noqa: bool = True, keep_fixes: bool = False) -> FileResult:
     """Run the model pass and the rule walk on a parsed module."""
     result = FileResult(path)
     model = ModuleModel(module, path, settings, project, package)
     if project is not None:
-        project.remember(path, text.encode("utf-8", "surrogatepass"), model.summary())
+        project.remember(path, text.encode("utf-8", "surrogatepass"), model.summary)
     rule_classes = enabled_rules(settings, path)
     if not rule_classes:
         return result
@@ -213,13 +215,17 @@ def analyse_module(module: cst.Module, text: str, path: str, settings: Settings,
 
     Dispatcher(rules, context, on_error).walk(module)
     if sink:
-        result.findings = _place(sink, module, path)
+        placed = _place(sink, module, path)
         if apply_noqa:
-            result.findings = _without_noqa(result.findings, text)
+            placed = _without_noqa(placed, text)
+        result.findings = [finding for finding, _ in placed]
+        if keep_fixes:
+            result.fixes = [(finding, fix) for finding, fix in placed if fix is not None]
     return result
 
 
-def _place(reports: list[Report], module: cst.Module, path: str) -> list[Finding]:
+def _place(reports: list[Report], module: cst.Module, path: str
+           ) -> list[tuple[Finding, Fix | None]]:
     """Turn reports into findings; positions are computed once, only when there are some."""
     positions = None
     if any(report.node is not None for report in reports):
@@ -238,14 +244,17 @@ def _place(reports: list[Report], module: cst.Module, path: str) -> list[Finding
         if key in seen:
             continue
         seen.add(key)
-        findings.append(Finding(path, None, line, column, report.rule.code, report.rule.name,
-                                report.severity, report.message, end_line, end_column))
+        findings.append((Finding(path, None, line, column, report.rule.code, report.rule.name,
+                                 report.severity, report.message, end_line, end_column,
+                                 fixable=report.fix is not None), report.fix))
     return findings
 
 
-def _without_noqa(findings: list[Finding], text: str) -> list[Finding]:
+def _without_noqa(placed: list[tuple[Finding, Fix | None]], text: str
+                  ) -> list[tuple[Finding, Fix | None]]:
+    """Drop the findings a `# noqa` comment suppresses."""
     mapping = noqa.noqa_lines(text)
-    return [finding for finding in findings
+    return [(finding, fix) for finding, fix in placed
             if not noqa.is_suppressed(finding.code, mapping.get(finding.line, ""))]
 
 
@@ -263,7 +272,8 @@ def parse_error_finding(path: str, failure: ParseFailure | DecodeError,
 
 
 def lint_text(text: str, path: str = "<string>", settings: Settings | None = None,
-              project: ProjectIndex | None = None, apply_noqa: bool = True) -> FileResult:
+              project: ProjectIndex | None = None, apply_noqa: bool = True,
+              keep_fixes: bool = False) -> FileResult:
     """Lint source text (already decoded) and return the file's result."""
     settings = settings if settings is not None else with_default_ignores(Settings())
     result = FileResult(path)
@@ -276,11 +286,13 @@ def lint_text(text: str, path: str = "<string>", settings: Settings | None = Non
     except ParseFailure as failure:
         if settings.is_enabled(PARSE_ERROR, path):
             finding = parse_error_finding(path, failure)
-            result.findings = _without_noqa([finding], text) if apply_noqa else [finding]
+            kept = _without_noqa([(finding, None)], text) if apply_noqa else [(finding, None)]
+            result.findings = [finding for finding, _ in kept]
         return result
     package = package_of(path)[0] if os.path.isfile(path) else None
     try:
-        analysed = analyse_module(module, text, path, settings, project, package, apply_noqa)
+        analysed = analyse_module(module, text, path, settings, project, package, apply_noqa,
+                                  keep_fixes)
     except RecursionError:
         # Deeper than Python's recursion limit allows a tree walk (about 1,000 nested
         # expressions); raising the limit risks overflowing the C stack, so report instead.

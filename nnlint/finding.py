@@ -37,7 +37,7 @@ class Finding:
         return (self.path, cell, self.line, self.column, self.code, self.message)
 
     def to_json(self) -> dict:
-        """The DESIGN §5 JSON object (a contract: do not rename fields)."""
+        """The DESIGN §5 JSON object plus `fix` (a contract: do not rename fields)."""
         return {
             "path": self.path,
             "line": self.line,
@@ -49,4 +49,5 @@ class Finding:
             "severity": self.severity.value,
             "message": self.message,
             "cell": self.cell,
+            "fix": self.fixable,
         }

@@ -17,7 +17,7 @@ FINDING_SCHEMA = {  # DESIGN §5, written out independently of the code under te
         "type": "object",
         "additionalProperties": False,
         "required": ["path", "line", "column", "end_line", "end_column", "code", "name",
-                     "severity", "message", "cell"],
+                     "severity", "message", "cell", "fix"],
         "properties": {
             "path": {"type": "string"},
             "line": {"type": "integer", "minimum": 1},
@@ -29,6 +29,7 @@ FINDING_SCHEMA = {  # DESIGN §5, written out independently of the code under te
             "severity": {"enum": ["error", "warning"]},
             "message": {"type": "string", "minLength": 1},
             "cell": {"type": ["integer", "null"], "minimum": 0},
+            "fix": {"type": "boolean"},  # issue 10: whether `nnlint fix` has a rewrite
         },
     },
 }
@@ -58,7 +59,7 @@ def test_finding_exits_1_in_flake8_line_format(tmp_path):
     assert result.returncode == 1
     assert result.stderr == ""
     assert result.stdout == ("train.py:3:1: NNL403 `model.eval` is only read, never called: the "
-                             "model stays in training mode; write `model.eval()`\n")
+                             "model stays in training mode; write `model.eval()` (fixable)\n")
 
 
 def test_syntax_error_beside_a_hazard_gives_both_findings(tmp_path):
@@ -84,7 +85,8 @@ def test_json_output_matches_the_design_schema(tmp_path):
         ("broken.py", 2, "NNL001"), ("train.py", 3, "NNL403")]
     assert data[1] == {"path": "train.py", "line": 3, "column": 1, "end_line": 3,
                        "end_column": 11, "code": "NNL403", "name": "mode-switch-not-called",
-                       "severity": "error", "message": data[1]["message"], "cell": None}
+                       "severity": "error", "message": data[1]["message"], "cell": None,
+                       "fix": True}
 
 
 def test_json_output_of_a_clean_run_is_an_empty_array(tmp_path):

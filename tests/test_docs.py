@@ -51,8 +51,9 @@ def test_demo_json_output_is_the_same_findings():
     result = run_cli("check", "--format", "json", "fixtures/demo", cwd=ROOT)
     data = json.loads(result.stdout)
     text_lines = demo_output().splitlines()
+    marker = " (fixable)"
     assert [f"{d['path']}:{d['line']}:{d['column']}: {d['code']} {d['message']}"
-            for d in data] == text_lines
+            + (marker if d["fix"] else "") for d in data] == text_lines
 
 
 def test_regenerate_command_is_idempotent():

@@ -5,6 +5,7 @@ import textwrap
 
 import pytest
 
+from nnlint.report.text import FIXABLE_MARKER
 from tests.conftest import FIXTURES, run_cli
 
 FLAKE8_FORMAT = "%(path)s:%(row)d:%(col)d: %(code)s %(text)s"
@@ -17,9 +18,11 @@ def flake8(*args: str, cwd, select: str = "NNL"):
 
 
 def nnlint_lines(*args: str, cwd) -> list[str]:
+    """nnlint's findings without NNL001 and without the CLI-only fixable marker."""
     result = run_cli("check", "-j", "1", *args, cwd=cwd)
     assert result.returncode in (0, 1), result.stderr
-    return [line for line in result.stdout.splitlines() if " NNL001 " not in line]
+    return [line.removesuffix(FIXABLE_MARKER) for line in result.stdout.splitlines()
+            if " NNL001 " not in line]
 
 
 def test_flake8_and_nnlint_agree_on_every_fixture():

@@ -10,7 +10,7 @@ from __future__ import annotations
 import hashlib
 import os
 from pathlib import Path
-from typing import TYPE_CHECKING, Iterator
+from typing import TYPE_CHECKING, Callable, Iterator
 
 from nnlint.analysis.api import EXTERNAL_PACKAGES
 
@@ -98,8 +98,12 @@ class ProjectIndex:
         return None
 
     # -- summaries ----------------------------------------------------------------------
-    def remember(self, path: str, data: bytes, summary: "ModuleSummary | None") -> None:
-        """Store the summary of a file the engine has just analysed."""
+    def remember(self, path: str, data: bytes,
+                 summary: "Callable[[], ModuleSummary | None]") -> None:
+        """Store (the means to make) the summary of a file the engine has just analysed.
+
+        The summary is made only if another module asks for it.
+        """
         key = os.path.abspath(path)
         self._by_path[key] = (content_hash(data), summary)
         self._dependencies[key] = dict(self._consumers[-1]) if self._consumers else {}
@@ -133,7 +137,9 @@ class ProjectIndex:
         cached = self._by_path.get(key)
         if cached is not None and cached[0] == digest:
             self._consulted(key, digest)
-            return cached[1]
+            if callable(cached[1]):
+                self._by_path[key] = (digest, cached[1]())
+            return self._by_path[key][1]
         self._consulted(key, digest)
         if (key in self._in_progress or self._depth >= MAX_DEPTH
                 or self._computed >= MAX_SUMMARIES):

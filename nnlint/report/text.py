@@ -6,8 +6,14 @@ from typing import Iterable
 from nnlint.finding import Finding
 
 
+#: appended to findings `nnlint fix` can rewrite
+FIXABLE_MARKER = " (fixable)"
+
+
 def format_finding(finding: Finding) -> str:
-    return f"{finding.path}:{finding.line}:{finding.column}: {finding.code} {finding.message}"
+    marker = FIXABLE_MARKER if finding.fixable else ""
+    return (f"{finding.path}:{finding.line}:{finding.column}: {finding.code} "
+            f"{finding.message}{marker}")
 
 
 def render(findings: Iterable[Finding]) -> str:

@@ -13,19 +13,33 @@ if TYPE_CHECKING:
     from nnlint.analysis.walk import WalkContext
 
 
+class Fix:
+    """One unambiguous rewrite: replace `target` (a node of the parsed module) by `replacement`.
+
+    `nnlint fix` applies it with libcst, so everything outside `target` stays byte-identical.
+    """
+
+    __slots__ = ("target", "replacement")
+
+    def __init__(self, target: cst.CSTNode, replacement: cst.CSTNode) -> None:
+        self.target = target
+        self.replacement = replacement
+
+
 class Report:
     """A finding before positions are known: the node and the finished message."""
 
-    __slots__ = ("rule", "node", "message", "line", "column", "severity")
+    __slots__ = ("rule", "node", "message", "line", "column", "severity", "fix")
 
     def __init__(self, rule: type["Rule"], node: cst.CSTNode | None, message: str,
                  line: int | None = None, column: int | None = None,
-                 severity: Severity | None = None) -> None:
+                 severity: Severity | None = None, fix: Fix | None = None) -> None:
         self.rule = rule
         self.node = node
         self.message = message
         #: overrides the rule's default severity for this one finding (None: the rule's)
         self.severity = severity or rule.severity
+        self.fix = fix
         #: explicit 1-based position, used when there is no node (parse errors)
         self.line = line
         self.column = column
@@ -59,14 +73,16 @@ class Rule:
         self._sink = sink
 
     def report(self, node: cst.CSTNode, severity: Severity | None = None,
-               **fields: object) -> None:
+               fix: Fix | None = None, **fields: object) -> None:
         """Record a finding at `node`; the message is the template filled with `fields`.
 
         `severity` overrides the rule's default for this finding (for rules whose certainty
         depends on what is known, e.g. a warning that becomes an error with more evidence).
+        `fix` is the rewrite `nnlint fix` may apply; give one only when it is unambiguous and
+        changes nothing but the bug.
         """
         self._sink.append(Report(type(self), node, self.message.format(**fields),
-                                 severity=severity))
+                                 severity=severity, fix=fix))
 
     @classmethod
     def message_fields(cls) -> set[str]:

@@ -5,7 +5,7 @@ import libcst as cst
 
 from nnlint.analysis.api.modes import UNCALLED_METHOD_CONSEQUENCES
 from nnlint.finding import Severity
-from nnlint.rules.base import Rule, register
+from nnlint.rules.base import Fix, Rule, register
 
 
 @register
@@ -37,4 +37,5 @@ class ModeSwitchNotCalled(Rule):
         if consequence is None:
             return
         expression = self.model.module.code_for_node(target)
-        self.report(target, expression=expression, consequence=consequence)
+        self.report(target, expression=expression, consequence=consequence,
+                    fix=Fix(target, cst.Call(func=target)))

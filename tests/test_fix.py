@@ -1,0 +1,139 @@
+"""`nnlint fix`: only the intended bytes change, idempotent, atomic, careful with the disk."""
+import os
+import shutil
+import stat
+
+import pytest
+
+from nnlint.analysis.project import ProjectIndex
+from nnlint.config import Settings, with_default_ignores
+from nnlint.engine import check_file
+from nnlint.fix import fix_file, fix_text, write_atomically
+from tests.conftest import FIXTURES, run_cli
+
+SETTINGS = with_default_ignores(Settings())
+SOURCE = (
+    "import torch  # the framework\n"
+    "\n"
+    "model = torch.nn.Linear(2, 2)\n"
+    "model.eval   # switch before scoring\n"
+    "opt = torch.optim.SGD(model.parameters(), lr=0.1)\n"
+    "opt.zero_grad  # noqa: NNL403\n"
+    "(model).train\n"
+)
+
+
+def test_fix_changes_only_the_intended_bytes_and_keeps_noqa():
+    fixed, applied, remaining = fix_text(SOURCE, "x.py", SETTINGS)
+    assert fixed == SOURCE.replace("model.eval   #", "model.eval()   #").replace(
+        "(model).train\n", "(model).train()\n")
+    assert [(f.line, f.code) for f in applied] == [(4, "NNL403"), (7, "NNL403")]
+    assert remaining == []
+
+
+def test_fix_is_idempotent():
+    once, _, _ = fix_text(SOURCE, "x.py", SETTINGS)
+    twice, applied, _ = fix_text(once, "x.py", SETTINGS)
+    assert twice == once and applied == []
+
+
+def test_crlf_line_endings_bom_and_permissions_are_kept(tmp_path):
+    path = tmp_path / "train.py"
+    path.write_bytes(b"\xef\xbb\xbf" + SOURCE.replace("\n", "\r\n").encode())
+    os.chmod(path, 0o750)
+    result = fix_file(str(path), SETTINGS)
+    assert result.changed and not result.messages
+    data = path.read_bytes()
+    assert data.startswith(b"\xef\xbb\xbf")
+    assert b"model.eval()   # switch before scoring\r\n" in data
+    assert data.count(b"\r\n") == SOURCE.count("\n") and b"\n\n" not in data
+    assert stat.S_IMODE(os.stat(path).st_mode) == 0o750
+    assert [p.name for p in tmp_path.iterdir()] == ["train.py"]  # no temporary file left
+
+
+def test_latin1_file_is_written_back_in_its_encoding(tmp_path):
+    path = tmp_path / "depot.py"
+    text = ("# -*- coding: latin-1 -*-\nimport torch\nville = 'Orléans'\n"
+            "m = torch.nn.Linear(1, 1)\nm.eval\n")
+    path.write_bytes(text.encode("latin-1"))
+    fix_file(str(path), SETTINGS)
+    assert path.read_bytes() == text.replace("m.eval\n", "m.eval()\n").encode("latin-1")
+
+
+def test_a_file_changed_on_disk_is_not_written(tmp_path):
+    path = tmp_path / "train.py"
+    path.write_text(SOURCE)
+    original = path.read_bytes()
+    path.write_text(SOURCE + "# edited meanwhile\n")
+    message = write_atomically(str(path), original, "replaced\n")
+    assert message == f"nnlint: {path}: changed on disk while being fixed; not written"
+    assert path.read_text() == SOURCE + "# edited meanwhile\n"
+
+
+def test_diff_writes_nothing_and_exits_1(tmp_path):
+    path = tmp_path / "train.py"
+    path.write_text(SOURCE)
+    result = run_cli("fix", "--diff", "train.py", cwd=tmp_path)
+    assert result.returncode == 1
+    assert path.read_text() == SOURCE
+    assert result.stdout.startswith("--- a/train.py\n+++ b/train.py\n")
+    assert "-model.eval   # switch before scoring\n+model.eval()   # switch before scoring\n" \
+        in result.stdout
+    assert result.stderr == "nnlint: would fix 2 findings in 1 file; 0 remain\n"
+
+
+def test_fix_command_then_check_is_clean(tmp_path):
+    path = tmp_path / "train.py"
+    path.write_text(SOURCE)
+    result = run_cli("fix", "train.py", cwd=tmp_path)
+    assert (result.returncode, result.stdout) == (0, "")
+    assert result.stderr == "nnlint: fixed 2 findings in 1 file; 0 remain\n"
+    assert run_cli("check", "train.py", cwd=tmp_path).returncode == 0
+
+
+FIXABLE_FIXTURES = [path for path in sorted((FIXTURES / "rules").rglob("*.py"))
+                    if any(f.fixable for f in check_file(str(path), SETTINGS).findings)]
+
+
+def test_some_fixtures_have_fixable_findings():
+    assert FIXABLE_FIXTURES
+
+
+@pytest.mark.parametrize("fixture", FIXABLE_FIXTURES,
+                         ids=lambda p: str(p.relative_to(FIXTURES)))
+def test_each_fix_removes_its_finding_and_adds_none(tmp_path, fixture):
+    copy = tmp_path / fixture.name
+    shutil.copyfile(fixture, copy)
+    before = check_file(str(copy), SETTINGS, ProjectIndex(SETTINGS)).findings
+    result = fix_file(str(copy), SETTINGS, ProjectIndex(SETTINGS))
+    after = check_file(str(copy), SETTINGS, ProjectIndex(SETTINGS)).findings
+    assert result.changed
+    assert all(not finding.fixable for finding in after)
+    before_unfixable = [(f.code, f.message) for f in before if not f.fixable]
+    assert sorted((f.code, f.message) for f in after) == sorted(before_unfixable)
+    original_lines = fixture.read_text().splitlines()
+    fixed_lines = copy.read_text().splitlines()
+    assert len(original_lines) == len(fixed_lines)
+    changed = {number for number, (old, new) in enumerate(zip(original_lines, fixed_lines), 1)
+               if old != new}
+    assert changed == {f.line for f in before if f.fixable}
+
+
+def test_fixing_a_copy_of_the_demo_leaves_only_unfixable_findings(tmp_path):
+    demo = tmp_path / "demo"
+    shutil.copytree(FIXTURES / "demo", demo)
+    before = run_cli("check", "--no-cache", ".", cwd=demo).stdout.splitlines()
+    result = run_cli("fix", ".", cwd=demo)
+    assert result.returncode in (0, 1)
+    after = run_cli("check", "--no-cache", ".", cwd=demo).stdout.splitlines()
+    assert after == [line for line in before if not line.endswith(" (fixable)")]
+    fixed_lines = {(line.split(":")[0], int(line.split(":")[1])) for line in before
+                   if line.endswith(" (fixable)")}
+    changed = set()
+    for original in sorted((FIXTURES / "demo").rglob("*.py")):
+        relative = original.relative_to(FIXTURES / "demo")
+        old, new = original.read_text().splitlines(), (demo / relative).read_text().splitlines()
+        assert len(old) == len(new)
+        changed |= {(str(relative), number) for number, (a, b) in enumerate(zip(old, new), 1)
+                    if a != b}
+    assert changed == fixed_lines
