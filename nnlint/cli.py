@@ -14,6 +14,7 @@ from nnlint.rules.base import Rule, all_rules
 
 EXIT_CLEAN, EXIT_FINDINGS, EXIT_ERROR = 0, 1, 2
 FORMATS = ("text", "json")
+CHECK_FORMATS = (*FORMATS, "sarif")
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -29,7 +30,7 @@ def _parser() -> argparse.ArgumentParser:
                                 description="Check Python files and folders for training hazards.")
     check.add_argument("paths", nargs="*", default=["."], metavar="PATH",
                        help="files or folders to check (default: the current folder)")
-    check.add_argument("--format", choices=FORMATS, default="text",
+    check.add_argument("--format", choices=CHECK_FORMATS, default="text",
                        help="output format (default: text, `path:line:col: CODE message`)")
     check.add_argument("--select", metavar="CODES",
                        help="comma-separated code prefixes to report (default: all on by default)")
@@ -99,10 +100,15 @@ def _check(arguments: argparse.Namespace) -> int:
     report = run_paths(arguments.paths, settings, arguments.jobs)
     if arguments.format == "json":
         sys.stdout.write(json_report.render(report.findings))
+    elif arguments.format == "sarif":
+        from nnlint.report import sarif as sarif_report
+
+        problems = report.messages + [error.describe() for error in report.errors]
+        sys.stdout.write(sarif_report.render(report.findings, problems))
     else:
         sys.stdout.write(text_report.render(report.findings))
     sys.stdout.flush()
-    for message in report.messages:
+    for message in report.messages + report.notes:
         print(message, file=sys.stderr)
     for error in report.errors:
         print(error.describe(), file=sys.stderr)

@@ -16,7 +16,7 @@ from typing import Iterable, Sequence
 import libcst as cst
 from libcst.metadata import MetadataWrapper, PositionProvider
 
-from nnlint import noqa
+from nnlint import noqa, notebooks
 from nnlint.analysis.api import FRAMEWORK_PACKAGES
 from nnlint.analysis.model import ModuleModel
 from nnlint.analysis.project import ProjectIndex, package_of
@@ -66,6 +66,9 @@ class FileResult:
     errors: list[InternalError] = field(default_factory=list)
     #: one-line messages for the user (unreadable file, ...), shown on stderr
     messages: list[str] = field(default_factory=list)
+    #: one-line notices on stderr that do not change the exit status (a notebook of
+    #: another language, skipped as a folder's non-Python files are)
+    notes: list[str] = field(default_factory=list)
 
 
 class Dispatcher(cst.CSTVisitor):
@@ -246,6 +249,8 @@ def check_file(path: str, settings: Settings, project: ProjectIndex | None = Non
     except OSError as error:
         reason = error.strerror or type(error).__name__
         return FileResult(path, messages=[f"nnlint: {path}: cannot read: {reason}"])
+    if notebooks.is_notebook(path):
+        return notebooks.check_notebook(path, data, settings, project)
     try:
         text = decode(data)
     except DecodeError as error:
@@ -262,6 +267,7 @@ class RunReport:
     files_checked: int
     errors: list[InternalError]
     messages: list[str]
+    notes: list[str] = field(default_factory=list)
 
 
 _WORKER_PROJECT: ProjectIndex | None = None
@@ -305,4 +311,5 @@ def run_paths(paths: Iterable[str], settings: Settings | None = None,
         errors.extend(result.errors)
         messages.extend(result.messages)
     findings.sort(key=Finding.sort_key)
-    return RunReport(findings, len(files), errors, messages)
+    notes = [note for result in results for note in result.notes]
+    return RunReport(findings, len(files), errors, messages, notes)
