@@ -13,8 +13,10 @@ a top-level object with `nbformat`, `metadata` and a `cells` array; each cell ha
 """
 from __future__ import annotations
 
+import ast
 import json
 import re
+import warnings
 from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING
 
@@ -69,6 +71,19 @@ class NotebookProgram:
     text: str
     #: entry n-1 is program line n: (cell index among ALL cells, 0-based; line in cell, 1-based)
     line_map: tuple[tuple[int, int], ...]
+    #: (cell index, its lines as checked) of every Python code cell, in order
+    cells: tuple[tuple[int, tuple[str, ...]], ...] = ()
+    #: True when some cell ends inside an open bracket, string or backslash continuation
+    has_open_cell: bool = False
+
+    def first_broken_cell(self) -> tuple[str, int, int, int] | None:
+        """(message, cell index, line in cell, column) of the first cell CPython rejects."""
+        for index, lines in self.cells:
+            error = cell_syntax_error(list(lines))
+            if error is not None:
+                message, line, column = error
+                return message, index, min(max(line, 1), max(len(lines), 1)), column
+        return None
 
     def locate(self, line: int) -> tuple[int, int]:
         """(cell index, line in the cell) of a 1-based program line; past the end: the last."""
@@ -110,13 +125,18 @@ def read_program(data: bytes) -> NotebookProgram:
         raise NotPythonNotebook(language)
     lines: list[str] = []
     line_map: list[tuple[int, int]] = []
+    code_cells: list[tuple[int, tuple[str, ...]]] = []
+    has_open_cell = False
     for index, cell in enumerate(cells):
-        if cell.get("cell_type") != "code":
+        if cell.get("cell_type") != "code" or not _cell_is_python(cell):
             continue
-        for number, line in enumerate(python_lines(_source_of(cell, index)), start=1):
+        cell_lines, is_complete = _neutralised(_source_of(cell, index))
+        has_open_cell = has_open_cell or not is_complete
+        code_cells.append((index, tuple(cell_lines)))
+        for number, line in enumerate(cell_lines, start=1):
             lines.append(line + "\n")
             line_map.append((index, number))
-    return NotebookProgram("".join(lines), tuple(line_map))
+    return NotebookProgram("".join(lines), tuple(line_map), tuple(code_cells), has_open_cell)
 
 
 def _cells_of(document: object) -> list[dict]:
@@ -148,6 +168,14 @@ def _kernel_language(document: dict) -> str | None:
     return None
 
 
+def _cell_is_python(cell: dict) -> bool:
+    """False for a code cell an editor marked as another language (VS Code's `languageId`)."""
+    metadata = cell.get("metadata")
+    editor = metadata.get("vscode") if isinstance(metadata, dict) else None
+    language = editor.get("languageId") if isinstance(editor, dict) else None
+    return not isinstance(language, str) or language.lower() == "python"
+
+
 def _source_of(cell: dict, index: int) -> str:
     source = cell.get("source", "")
     if isinstance(source, list) and all(isinstance(part, str) for part in source):
@@ -159,6 +187,11 @@ def _source_of(cell: dict, index: int) -> str:
 
 def python_lines(source: str) -> list[str]:
     """The cell's lines with IPython-only syntax replaced, one output line per input line."""
+    return _neutralised(source)[0]
+
+
+def _neutralised(source: str) -> tuple[list[str], bool]:
+    """python_lines, and whether the cell ends where a statement may start (nothing open)."""
     lines = _NEWLINE.split(source)
     if lines and lines[-1] == "":
         lines.pop()  # the newline ending the last line starts no new line
@@ -166,7 +199,7 @@ def python_lines(source: str) -> list[str]:
     if first is not None and lines[first].lstrip().startswith("%%"):
         magic = _CELL_MAGIC_NAME.match(lines[first].lstrip())
         if magic is None or magic.group(1) not in PYTHON_BODY_CELL_MAGICS:
-            return ["" for _ in lines]  # %%bash, %%writefile...: the body is not Python
+            return ["" for _ in lines], True  # %%bash, %%writefile...: the body is not Python
         lines = list(lines)
         lines[first] = ""
     scanner = _StatementScanner()
@@ -178,7 +211,26 @@ def python_lines(source: str) -> list[str]:
             continue
         scanner.feed(line)
         result.append(line)
-    return result
+    return result, scanner.at_statement_start
+
+
+def cell_syntax_error(lines: list[str]) -> tuple[str, int, int] | None:
+    """CPython's (message, line, column) for a cell that does not compile on its own.
+
+    IPython compiles each cell by itself, so a cell left inside an open bracket, string or
+    backslash continuation is a syntax error there; joined with the next cell it would
+    silently swallow that cell instead. None when CPython parses the cell (or cannot say).
+    """
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # SyntaxWarning for odd escapes is not our news
+            ast.parse("\n".join(lines) + "\n")
+    except SyntaxError as error:
+        # SyntaxError.lineno and .offset are 1-based (Python documentation, SyntaxError)
+        return f"syntax error: {error.msg}", error.lineno or 1, error.offset or 1
+    except (RecursionError, MemoryError, ValueError):
+        return None
+    return None
 
 
 def _is_ipython_syntax(line: str) -> bool:
@@ -249,6 +301,7 @@ def check_notebook(path: str, data: bytes, settings: "Settings",
                    project: "ProjectIndex | None" = None) -> "FileResult":
     """Lint a notebook's bytes: findings carry their cell index and line inside the cell."""
     from nnlint.engine import PARSE_ERROR, FileResult, lint_text, parse_error_finding
+    from nnlint.parsing import ParseFailure
 
     try:
         program = read_program(data)
@@ -260,7 +313,22 @@ def check_notebook(path: str, data: bytes, settings: "Settings",
     except NotPythonNotebook as other:
         return FileResult(path, notes=[f"nnlint: {path}: kernel language {other.language!r} "
                                        f"is not Python; notebook skipped"])
-    result = lint_text(program.text, path, settings, project)
-    result.findings = sorted((program.place(finding) for finding in result.findings),
-                             key=Finding.sort_key)
+    # IPython compiles each cell by itself: a broken cell is reported where CPython would
+    # report it, not where the joined program happens to fail (possibly a later cell)
+    broken = program.first_broken_cell() if program.has_open_cell else None
+    if broken is None:
+        result = lint_text(program.text, path, settings, project)
+        if not any(finding.code == PARSE_ERROR for finding in result.findings):
+            result.findings = sorted((program.place(finding) for finding in result.findings),
+                                     key=Finding.sort_key)
+            return result
+        broken = program.first_broken_cell()
+        if broken is None:  # only the joined program fails: report it where it fails
+            result.findings = [program.place(finding) for finding in result.findings]
+            return result
+    message, cell, line, column = broken
+    result = FileResult(path)
+    if settings.is_enabled(PARSE_ERROR, path):
+        finding = parse_error_finding(path, ParseFailure(message, line, column))
+        result.findings = [replace(finding, cell=cell)]
     return result

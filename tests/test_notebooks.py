@@ -4,11 +4,13 @@ import os
 from pathlib import Path
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from nnlint.config import Settings, with_default_ignores
 from nnlint.engine import check_file
 from nnlint.files import discover
-from nnlint.notebooks import read_program, python_lines
+from nnlint.notebooks import _NEWLINE, check_notebook, python_lines, read_program
 from tests.conftest import FIXTURES, run_cli
 
 NOTEBOOK = FIXTURES / "notebooks" / "kestrel_delay_review.ipynb"
@@ -86,6 +88,16 @@ def test_line_map_counts_all_cells_and_lines_inside_each():
     assert program.line_map == ((1, 1), (1, 2), (1, 3), (3, 1), (3, 2))
 
 
+def test_a_cell_marked_as_another_language_is_left_out():
+    document = json.loads(notebook(("code", "import torch\n"), ("code", "SELECT 1;\n"),
+                                   ("code", "model.eval\n")))
+    document["cells"][1]["metadata"] = {"vscode": {"languageId": "sql"}}
+    document["cells"][2]["metadata"] = {"vscode": {"languageId": "python"}}
+    program = read_program(json.dumps(document).encode())
+    assert program.text == "import torch\nmodel.eval\n"
+    assert program.line_map == ((0, 1), (2, 1))
+
+
 def test_string_source_and_crlf_lines_are_read():
     document = json.loads(notebook(("code", "")))
     document["cells"][0]["source"] = "import torch\r\nmodel.eval\r\n"
@@ -131,6 +143,27 @@ def test_a_name_from_an_earlier_cell_counts_and_noqa_works_in_a_cell(tmp_path):
         ("code", "model = torch.nn.Linear(2, 2)\n"),
         ("code", "model.train  # noqa: NNL403\nmodel.eval\n")))
     assert [(f.cell, f.line, f.column) for f in result.findings] == [(2, 2, 1)]
+
+
+@pytest.mark.parametrize("broken, line, column, detail", [
+    ("scores = delay_net(\n", 1, 19, "'(' was never closed"),
+    ('note = """depot\nscans\n', 1, 8, "unterminated triple-quoted string literal "
+                                       "(detected at line 2)"),
+])
+def test_a_cell_left_open_is_reported_there_and_does_not_swallow_the_next(
+        tmp_path, broken, line, column, detail):
+    result = findings_of(tmp_path, notebook(("code", "import torch\n"), ("code", broken),
+                                            ("code", ")\nmodel.eval\n")))
+    assert [(f.code, f.cell, f.line, f.column, f.message) for f in result.findings] == [
+        ("NNL001", 1, line, column, f"syntax error: {detail}; nothing else in this file was "
+                                    f"checked")]
+
+
+def test_a_block_header_ending_a_cell_is_reported_in_that_cell(tmp_path):
+    result = findings_of(tmp_path, notebook(("code", "import torch\nfor batch in []:\n"),
+                                            ("code", "model.eval\n")))
+    assert [(f.code, f.cell, f.line) for f in result.findings] == [("NNL001", 0, 2)]
+    assert result.findings[0].message.startswith("syntax error: expected an indented block")
 
 
 def test_a_syntax_error_is_reported_in_its_cell(tmp_path):
@@ -204,3 +237,58 @@ def test_folders_yield_notebooks_beside_python_files(tmp_path):
         (tmp_path / name).write_text("")
     found = [Path(path).name for path in discover([str(tmp_path)])]
     assert found == ["a.py", "b.ipynb"]
+
+
+JSON_SCALARS = st.none() | st.booleans() | st.integers() | st.text(max_size=8)
+JSON_VALUES = st.recursive(JSON_SCALARS, lambda inner: st.lists(inner, max_size=3)
+                           | st.dictionaries(st.text(max_size=6), inner, max_size=3),
+                           max_leaves=8)
+#: pieces of real cells, so the fuzzed programs reach the parser and the rules
+CELL_LINES = ["import torch", "model.eval", "model.eval?", "%time model.eval", "!ls",
+              "%%bash", "%%time", "files = !ls", "x = (", ")", '"""', "'", "\\", "if x:",
+              "    model.train", "  %matplotlib inline", "# noqa", "\r", ""]
+CELLS = st.fixed_dictionaries({
+    "cell_type": st.sampled_from(["code", "markdown", "raw"]) | JSON_SCALARS,
+    "source": st.lists(st.sampled_from(CELL_LINES), max_size=6).map("\n".join)
+    | st.lists(st.sampled_from(CELL_LINES).map(lambda line: line + "\n"), max_size=6)
+    | st.text(alphabet="%!?()[]'\"#\\ \nab=:.", max_size=40) | JSON_VALUES,
+    "metadata": JSON_VALUES,
+})
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.fixed_dictionaries({"nbformat": st.just(4) | JSON_SCALARS,
+                              "metadata": JSON_VALUES,
+                              "cells": st.lists(CELLS, max_size=4) | JSON_VALUES}))
+def test_no_notebook_json_makes_a_traceback(document):
+    data = json.dumps(document).encode()
+    result = check_notebook("fuzzed.ipynb", data, with_default_ignores(Settings()))
+    for finding in result.findings:
+        assert finding.line >= 1 and finding.column >= 1
+        assert finding.cell is None or 0 <= finding.cell < len(document["cells"])
+
+
+#: lines that keep a cell parseable, weighted so that most fuzzed notebooks reach the rules
+SAFE_LINES = ["model.eval", "model.eval?", "%time model.eval", "!ls", "files = !ls",
+              "  %matplotlib inline", "# noqa", "", "model.train  # noqa", "x = 1 % 2"]
+CODE_CELLS = st.lists(st.sampled_from(SAFE_LINES * 6 + CELL_LINES), max_size=8).map(
+    lambda lines: {"cell_type": "code", "metadata": {}, "source": "\n".join(lines)})
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(CODE_CELLS, min_size=1, max_size=4).map(
+    lambda cells: [{"cell_type": "code", "metadata": {}, "source": "import torch"}] + cells))
+def test_fuzzed_cells_map_every_finding_into_its_cell(cells):
+    data = json.dumps({"nbformat": 4, "metadata": {}, "cells": cells}).encode()
+    result = check_notebook("fuzzed.ipynb", data, with_default_ignores(Settings()))
+    for finding in result.findings:
+        cell_lines = _NEWLINE.split(cells[finding.cell]["source"])
+        assert 1 <= finding.line <= len(cell_lines), finding
+        if finding.code == "NNL403":  # the reported expression is in that cell, at that line
+            # (libcst places a statement that follows a lone backslash line on the
+            # backslash's line, in .py files too, so the span extends over continuations)
+            assert finding.end_line is not None, finding
+            last = finding.end_line
+            while last < len(cell_lines) and cell_lines[last - 1].endswith("\\"):
+                last += 1
+            assert "model." in "\n".join(cell_lines[finding.line - 1:last]), finding
