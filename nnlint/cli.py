@@ -4,11 +4,13 @@ from __future__ import annotations
 import argparse
 import difflib
 import json
+import os
 import sys
 import time
 from typing import Sequence
 
 from nnlint import __version__
+from nnlint.cache import FOLDER_NAME
 from nnlint.config import ConfigError, PRECISIONS, Settings, load, override
 from nnlint.rules.base import Rule, all_rules
 
@@ -43,6 +45,9 @@ def _parser() -> argparse.ArgumentParser:
                             "else float32)")
     check.add_argument("--config", metavar="PYPROJECT",
                        help="read [tool.nnlint] from this file instead of searching for one")
+    check.add_argument("--no-cache", action="store_true",
+                       help=f"do not read or write the result cache ({FOLDER_NAME}/ under the "
+                            f"project root; delete that folder to clear it)")
     check.add_argument("-j", "--jobs", type=_positive_int, default=None, metavar="N",
                        help="worker processes (default: all CPUs; output does not depend on it)")
 
@@ -97,7 +102,12 @@ def _check(arguments: argparse.Namespace) -> int:
     except ConfigError as error:
         print(error, file=sys.stderr)
         return EXIT_ERROR
-    report = run_paths(arguments.paths, settings, arguments.jobs)
+    progress = Progress(sys.stderr) if arguments.format == "text" else None
+    report = run_paths(arguments.paths, settings, arguments.jobs,
+                       use_cache=not arguments.no_cache,
+                       progress=progress.update if progress else None)
+    if progress is not None:
+        progress.close()
     if arguments.format == "json":
         sys.stdout.write(json_report.render(report.findings))
     elif arguments.format == "sarif":
@@ -118,6 +128,37 @@ def _check(arguments: argparse.Namespace) -> int:
     if report.errors or report.messages:
         return EXIT_ERROR
     return EXIT_FINDINGS if report.findings else EXIT_CLEAN
+
+
+class Progress:
+    """`files done/total (rate)` on a terminal's stderr once a run passes ~2 s; then erased.
+
+    Never shown in pipes, under CI (the CI variable set) or with machine-readable output.
+    """
+
+    DELAY = 2.0  # seconds; shorter runs finish before a display would help (common practice)
+
+    def __init__(self, stream) -> None:
+        self.stream = stream
+        self.enabled = _is_terminal(stream) and not os.environ.get("CI")
+        self.started = time.perf_counter()
+        self.shown = False
+
+    def update(self, done: int, total: int) -> None:
+        if not self.enabled:
+            return
+        elapsed = time.perf_counter() - self.started
+        if elapsed < self.DELAY:
+            return
+        rate = done / elapsed if elapsed > 0 else 0.0
+        self.stream.write(f"\r\x1b[Knnlint: {done}/{total} files ({rate:.0f} files/s)")
+        self.stream.flush()
+        self.shown = True
+
+    def close(self) -> None:
+        if self.shown:
+            self.stream.write("\r\x1b[K")
+            self.stream.flush()
 
 
 def _is_terminal(stream) -> bool:

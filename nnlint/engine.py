@@ -6,23 +6,27 @@ other rules' findings are kept. NNLINT_STRICT=1 (set by the tests) makes such bu
 """
 from __future__ import annotations
 
+import dataclasses
 import os
 import re
+import stat
 import traceback
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
-from typing import Iterable, Sequence
+from typing import Callable, Iterable, Sequence
 
 import libcst as cst
 from libcst.metadata import MetadataWrapper, PositionProvider
 
 from nnlint import noqa, notebooks
+from nnlint.cache import ResultCache
 from nnlint.analysis.api import FRAMEWORK_PACKAGES
 from nnlint.analysis.model import ModuleModel
 from nnlint.analysis.project import ProjectIndex, package_of
+from nnlint.analysis.walk import TRACKED_TYPES as _TRACKED_TYPES
 from nnlint.analysis.walk import WalkContext
 from nnlint.config import Settings, with_default_ignores
-from nnlint.files import DecodeError, decode, discover
+from nnlint.files import DecodeError, decode, discover, split_lines
 from nnlint.finding import Finding
 from nnlint.parsing import ParseFailure, parse
 from nnlint.rules.base import Report, Rule, all_rules, get_rule
@@ -71,37 +75,86 @@ class FileResult:
     notes: list[str] = field(default_factory=list)
 
 
-class Dispatcher(cst.CSTVisitor):
-    """One libcst walk that calls every enabled rule's visit_*/leave_* methods."""
+#: node fields that hold only layout (whitespace, brackets, separators): never walked
+_LAYOUT_FIELDS = frozenset({
+    "lpar", "rpar", "comma", "semicolon", "colon", "first_colon", "second_colon", "equal",
+    "dot", "leading_lines", "lines_after_decorators", "header", "footer", "indent",
+    "trailing_whitespace", "encoding", "default_indent", "default_newline",
+    "has_trailing_newline", "relative", "lbracket", "rbracket", "lbrace", "rbrace",
+    "asynchronous", "star", "conversion", "newline", "lsqb", "rsqb",
+})
+_CHILD_FIELDS: dict[type, tuple[str, ...]] = {}
+
+
+def _child_fields(node_type: type) -> tuple[str, ...]:
+    """The fields of a node type that can hold meaningful child nodes, in source order."""
+    fields = _CHILD_FIELDS.get(node_type)
+    if fields is None:
+        names = [field.name for field in dataclasses.fields(node_type)
+                 if field.name not in _LAYOUT_FIELDS and not field.name.startswith("whitespace")]
+        if "decorators" in names:  # decorators come first in the source
+            names.remove("decorators")
+            names.insert(0, "decorators")
+        fields = _CHILD_FIELDS[node_type] = tuple(names)
+    return fields
+
+
+class Dispatcher:
+    """One walk of the tree that calls every enabled rule's visit_*/leave_* methods.
+
+    The walk is ours, not libcst's `visit`: libcst rebuilds every node on the way back up
+    even for read-only visitors, and visits every whitespace and bracket. This one is
+    iterative (no recursion limit), skips layout-only fields, and reaches every other node
+    in source order, calling `visit_<Node>` before its children and `leave_<Node>` after.
+    """
 
     def __init__(self, rules: Sequence[Rule], context: WalkContext,
-                 on_error: "callable") -> None:
-        super().__init__()
+                 on_error: Callable[[str, Exception], None]) -> None:
         self.context = context
         self._on_error = on_error
-        self._visits: dict[str, list] = {}
-        self._leaves: dict[str, list] = {}
+        self._visits: dict[type, list] = {}
+        self._leaves: dict[type, list] = {}
         for rule in rules:
-            for type_name, method in _visit_methods(type(rule), "visit_"):
-                self._visits.setdefault(type_name, []).append((rule, method))
-            for type_name, method in _visit_methods(type(rule), "leave_"):
-                self._leaves.setdefault(type_name, []).append((rule, method))
+            for node_type, method in _visit_methods(type(rule), "visit_"):
+                self._visits.setdefault(node_type, []).append((rule, method))
+            for node_type, method in _visit_methods(type(rule), "leave_"):
+                self._leaves.setdefault(node_type, []).append((rule, method))
         self._broken: set[str] = set()
 
-    def on_visit(self, node: cst.CSTNode) -> bool:
-        self.context.enter(node)
-        handlers = self._visits.get(type(node).__name__)
-        if handlers:
-            self._call(handlers, node)
-        self.context.ancestors.append(node)
-        return True
-
-    def on_leave(self, original_node: cst.CSTNode) -> None:
-        self.context.ancestors.pop()
-        handlers = self._leaves.get(type(original_node).__name__)
-        if handlers:
-            self._call(handlers, original_node)
-        self.context.leave(original_node)
+    def walk(self, module: cst.Module) -> None:
+        context = self.context
+        ancestors = context.ancestors
+        visits, leaves = self._visits, self._leaves
+        tracked = _TRACKED_TYPES
+        node_base = cst.CSTNode
+        #: (node, leaving) pairs; a node is pushed again as "leaving" before its children
+        stack: list[tuple[cst.CSTNode, bool]] = [(module, False)]
+        while stack:
+            node, leaving = stack.pop()
+            node_type = type(node)
+            if leaving:
+                ancestors.pop()
+                handlers = leaves.get(node_type)
+                if handlers:
+                    self._call(handlers, node)
+                if node_type in tracked:
+                    context.leave(node)
+                continue
+            if node_type in tracked:
+                context.enter(node)
+            handlers = visits.get(node_type)
+            if handlers:
+                self._call(handlers, node)
+            ancestors.append(node)
+            stack.append((node, True))
+            children: list[cst.CSTNode] = []
+            for name in _child_fields(node_type):
+                value = getattr(node, name)
+                if isinstance(value, node_base):
+                    children.append(value)
+                elif type(value) in (tuple, list):
+                    children.extend(item for item in value if isinstance(item, node_base))
+            stack.extend((child, False) for child in reversed(children))
 
     def _call(self, handlers: list, node: cst.CSTNode) -> None:
         for rule, method in handlers:
@@ -120,12 +173,17 @@ _METHOD_CACHE: dict[tuple[type, str], list] = {}
 
 
 def _visit_methods(rule_class: type, prefix: str) -> list:
+    """(node type, unbound method) pairs for a rule's visit_*/leave_* methods."""
     key = (rule_class, prefix)
     if key not in _METHOD_CACHE:
         found = []
         for attribute in dir(rule_class):
             if attribute.startswith(prefix):
-                found.append((attribute[len(prefix):], getattr(rule_class, attribute)))
+                node_type = getattr(cst, attribute[len(prefix):], None)
+                if not isinstance(node_type, type):
+                    raise TypeError(f"{rule_class.__name__}.{attribute}: libcst has no node "
+                                    f"type {attribute[len(prefix):]!r}")
+                found.append((node_type, getattr(rule_class, attribute)))
         _METHOD_CACHE[key] = found
     return _METHOD_CACHE[key]
 
@@ -156,7 +214,7 @@ def analyse_module(module: cst.Module, text: str, path: str, settings: Settings,
         result.errors.append(InternalError(path, code, f"{type(error).__name__}: {error} "
                                                        f"({where})"))
 
-    module.visit(Dispatcher(rules, context, on_error))
+    Dispatcher(rules, context, on_error).walk(module)
     if sink:
         result.findings = _place(sink, module, path)
         if apply_noqa:
@@ -201,6 +259,8 @@ def parse_error_finding(path: str, failure: ParseFailure | DecodeError,
     message = getattr(failure, "message", None) or str(failure)
     if isinstance(failure, ParseFailure):
         line, column = failure.line, failure.column
+    elif isinstance(failure, DecodeError):
+        line = failure.line
     return Finding(path, None, line, column, rule.code, rule.name, rule.severity,
                    rule.message.format(detail=message))
 
@@ -212,8 +272,7 @@ def lint_text(text: str, path: str = "<string>", settings: Settings | None = Non
     result = FileResult(path)
     if text.startswith("\ufeff"):
         text = text[1:]
-    lines = text.splitlines(keepends=True)
-    if noqa.file_is_skipped(lines) or not wants_analysis(text):
+    if not wants_analysis(text) or ("flake8" in text and noqa.file_is_skipped(split_lines(text))):
         return result
     try:
         module = parse(text)
@@ -226,9 +285,11 @@ def lint_text(text: str, path: str = "<string>", settings: Settings | None = Non
     try:
         analysed = analyse_module(module, text, path, settings, project, package, apply_noqa)
     except RecursionError:
-        if is_strict():
-            raise
-        result.messages.append(f"nnlint: {path}: nested too deeply to analyse; file skipped")
+        # Deeper than Python's recursion limit allows a tree walk (about 1,000 nested
+        # expressions); raising the limit risks overflowing the C stack, so report instead.
+        if settings.is_enabled(PARSE_ERROR, path):
+            result.findings = [parse_error_finding(
+                path, ParseFailure("expressions nested too deeply to analyse"))]
         return result
     except Exception as error:  # noqa: BLE001 - the model pass failing must not end the run
         if is_strict():
@@ -239,18 +300,54 @@ def lint_text(text: str, path: str = "<string>", settings: Settings | None = Non
     return analysed
 
 
-def check_file(path: str, settings: Settings, project: ProjectIndex | None = None) -> FileResult:
-    """Read, decode and lint one file; never raises for bad input."""
+#: larger files are reported as NNL001 instead of parsed: libcst parses about 10k lines/s
+#: (DESIGN §6), so 1 MiB (~25k lines) already costs seconds; real training scripts are far
+#: smaller, and files this big are generated (common practice)
+MAX_FILE_BYTES = 1 << 20
+
+
+def read_source(path: str) -> bytes | str:
+    """The file's bytes, or a one-line message saying why it cannot be read."""
+    try:
+        status = os.stat(path)
+    except OSError as error:
+        return f"nnlint: {path}: cannot read: {error.strerror or type(error).__name__}"
+    if stat.S_ISDIR(status.st_mode):
+        return f"nnlint: {path}: is a folder, not a file; skipped"
+    if not stat.S_ISREG(status.st_mode):
+        # FIFOs and devices would block or never end; never open them
+        return f"nnlint: {path}: not a regular file; skipped"
+    limit = notebooks.MAX_NOTEBOOK_BYTES if notebooks.is_notebook(path) else MAX_FILE_BYTES
+    if status.st_size > limit:
+        return status.st_size
     try:
         with open(path, "rb") as handle:
-            data = handle.read()
-    except IsADirectoryError:
-        return FileResult(path, messages=[f"nnlint: {path}: is a folder, not a file; skipped"])
+            return handle.read(limit + 1)
     except OSError as error:
-        reason = error.strerror or type(error).__name__
-        return FileResult(path, messages=[f"nnlint: {path}: cannot read: {reason}"])
+        return f"nnlint: {path}: cannot read: {error.strerror or type(error).__name__}"
+
+
+def check_file(path: str, settings: Settings, project: ProjectIndex | None = None) -> FileResult:
+    """Read, decode and lint one file; never raises for bad input."""
+    data = read_source(path)
+    if isinstance(data, str):
+        return FileResult(path, messages=[data])
+    return check_data(path, data, settings, project)
+
+
+def check_data(path: str, data: bytes | int, settings: Settings,
+               project: ProjectIndex | None = None) -> FileResult:
+    """Lint a file's bytes (or, for an oversized file, its size)."""
     if notebooks.is_notebook(path):
         return notebooks.check_notebook(path, data, settings, project)
+    if isinstance(data, int) or len(data) > MAX_FILE_BYTES:
+        size = data if isinstance(data, int) else len(data)
+        result = FileResult(path)
+        if settings.is_enabled(PARSE_ERROR, path):
+            result.findings = [parse_error_finding(path, ParseFailure(
+                f"file is {size / (1 << 20):.1f} MiB, over the "
+                f"{MAX_FILE_BYTES >> 20} MiB limit for one file"))]
+        return result
     try:
         text = decode(data)
     except DecodeError as error:
@@ -270,46 +367,102 @@ class RunReport:
     notes: list[str] = field(default_factory=list)
 
 
-_WORKER_PROJECT: ProjectIndex | None = None
+class _Checker:
+    """Checks files for one run, in this process or a worker, with the result cache."""
+
+    def __init__(self, settings: Settings, use_cache: bool) -> None:
+        self.settings = settings
+        self.project = ProjectIndex(settings)
+        self.cache = ResultCache(settings.root, settings.cache_key()) if use_cache else None
+
+    def cached(self, path: str) -> FileResult | None:
+        if self.cache is None:
+            return None
+        data = read_source(path)
+        if not isinstance(data, bytes):
+            return None
+        findings = self.cache.get(path, data)
+        return None if findings is None else FileResult(path, findings)
+
+    def check(self, path: str) -> FileResult:
+        data = read_source(path)
+        if isinstance(data, str):
+            return FileResult(path, messages=[data])
+        if self.cache is None or isinstance(data, int):
+            return check_data(path, data, self.settings, self.project)
+        self.project.track()
+        try:
+            result = check_data(path, data, self.settings, self.project)
+        finally:
+            dependencies = self.project.untrack()
+        if not result.errors and not result.messages and not result.notes:
+            dependencies.pop(os.path.abspath(path), None)
+            self.cache.put(path, data, result.findings, dependencies)
+        return result
 
 
-def _check_in_worker(path: str, settings: Settings) -> FileResult:
-    global _WORKER_PROJECT
-    if _WORKER_PROJECT is None:
-        _WORKER_PROJECT = ProjectIndex(settings)
-    return check_file(path, settings, _WORKER_PROJECT)
+_WORKER: _Checker | None = None
 
 
-#: below this many files a process pool costs more than it saves (measured: ~0.15 s start-up)
+def _start_worker(settings: Settings, use_cache: bool) -> None:
+    global _WORKER
+    _WORKER = _Checker(settings, use_cache)
+
+
+def _check_in_worker(path: str) -> FileResult:
+    assert _WORKER is not None
+    return _WORKER.check(path)
+
+
+#: below this many files a process pool costs more than it saves (worker start-up ~0.15 s)
 PARALLEL_THRESHOLD = 8
+
+Progress = Callable[[int, int], None]
 
 
 def run_paths(paths: Iterable[str], settings: Settings | None = None,
-              jobs: int | None = None) -> RunReport:
-    """Discover and check files; the result does not depend on `jobs`."""
+              jobs: int | None = None, use_cache: bool = False,
+              progress: Progress | None = None) -> RunReport:
+    """Discover and check files; the result does not depend on `jobs` or the cache.
+
+    `progress(done, total)` is called after each file.
+    """
     settings = settings if settings is not None else with_default_ignores(Settings())
     paths = list(paths)
     messages: list[str] = []
     for given in paths:
-        if not os.path.exists(given) and not os.path.islink(given):
+        if not os.path.lexists(given):
             messages.append(f"nnlint: {given}: no such file or folder")
     files = list(discover([p for p in paths if os.path.lexists(p)], settings.exclude,
                           settings.root))
+    checker = _Checker(settings, use_cache)
+    done: dict[str, FileResult] = {}
+    for path in files:
+        hit = checker.cached(path)
+        if hit is not None:
+            done[path] = hit
+    pending = [path for path in files if path not in done]
+    report_progress = progress or (lambda finished, total: None)
     jobs = jobs if jobs is not None else (os.cpu_count() or 1)
-    results: list[FileResult]
-    if jobs <= 1 or len(files) < PARALLEL_THRESHOLD:
-        project = ProjectIndex(settings)
-        results = [check_file(path, settings, project) for path in files]
+    if jobs <= 1 or len(pending) < PARALLEL_THRESHOLD:
+        for path in pending:
+            done[path] = checker.check(path)
+            report_progress(len(done), len(files))
     else:
-        with ProcessPoolExecutor(max_workers=jobs) as pool:
-            results = list(pool.map(_check_in_worker, files, [settings] * len(files),
-                                    chunksize=max(1, len(files) // (jobs * 4))))
+        with ProcessPoolExecutor(max_workers=jobs, initializer=_start_worker,
+                                 initargs=(settings, use_cache)) as pool:
+            chunk = max(1, min(16, len(pending) // (jobs * 4)))
+            for path, result in zip(pending, pool.map(_check_in_worker, pending,
+                                                      chunksize=chunk)):
+                done[path] = result
+                report_progress(len(done), len(files))
     findings: list[Finding] = []
     errors: list[InternalError] = []
-    for result in results:
+    for path in files:
+        result = done[path]
         findings.extend(result.findings)
         errors.extend(result.errors)
         messages.extend(result.messages)
     findings.sort(key=Finding.sort_key)
-    notes = [note for result in results for note in result.notes]
+    notes = [note for path in files for note in done[path].notes]
     return RunReport(findings, len(files), errors, messages, notes)

@@ -4,6 +4,7 @@ from __future__ import annotations
 import fnmatch
 import io
 import os
+import re
 import tokenize
 from typing import Iterable, Iterator
 
@@ -19,6 +20,27 @@ SOURCE_SUFFIXES = (".py", ".ipynb")
 class DecodeError(Exception):
     """The bytes are not text in the declared (or default UTF-8) encoding."""
 
+    def __init__(self, message: str, line: int = 1) -> None:
+        super().__init__(message)
+        self.message = message
+        #: 1-based line of the first undecodable byte
+        self.line = line
+
+
+_LINE_BREAK = re.compile(r"(?<=\r\n)|(?<=\r)(?!\n)|(?<=\n)")
+
+
+def split_lines(text: str) -> list[str]:
+    """Lines with their endings, breaking only where Python does (\\n, \\r\\n, \\r).
+
+    str.splitlines also breaks at form feeds and other separators, which would shift line
+    numbers against the tokenizer's.
+    """
+    lines = _LINE_BREAK.split(text)
+    if lines and lines[-1] == "":
+        lines.pop()
+    return lines
+
 
 def decode(data: bytes) -> str:
     """Decode source bytes as Python does: BOM, PEP 263 cookie, else UTF-8."""
@@ -30,8 +52,7 @@ def decode(data: bytes) -> str:
         return data.decode(encoding)
     except UnicodeDecodeError as error:
         line = data.count(b"\n", 0, error.start) + 1
-        raise DecodeError(f"cannot decode as {encoding} (byte {error.start}, "
-                          f"line {line})") from None
+        raise DecodeError(f"cannot decode as {encoding} (byte {error.start})", line) from None
     except LookupError:
         raise DecodeError(f"unknown encoding {encoding!r}") from None
 

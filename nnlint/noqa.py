@@ -10,6 +10,8 @@ import io
 import re
 import tokenize
 
+from nnlint.files import split_lines
+
 #: flake8 defaults.NOQA_INLINE_REGEXP
 NOQA_INLINE = re.compile(r"# noqa(?::[\s]?(?P<codes>([A-Z]+[0-9]+(?:[,\s]+)?)+))?", re.IGNORECASE)
 #: flake8 defaults.NOQA_FILE (matched at the start of a line)
@@ -40,7 +42,7 @@ def is_suppressed(code: str, noqa_text: str) -> bool:
 
 def noqa_lines(text: str) -> dict[int, str]:
     """1-based line -> the text flake8 searches for noqa on that line."""
-    lines = text.splitlines(keepends=True)
+    lines = split_lines(text)
     mapping: dict[int, str] = {}
     try:
         tokens = list(tokenize.generate_tokens(io.StringIO(text).readline))

@@ -28,6 +28,9 @@ if TYPE_CHECKING:
     from nnlint.engine import FileResult
 
 NOTEBOOK_SUFFIX = ".ipynb"
+#: a notebook carries its outputs (base64 plots, tables), so it may be far larger than a .py
+#: file; its code is still bounded by the engine's per-file limit (common practice)
+MAX_NOTEBOOK_BYTES = 64 << 20
 
 #: cell magics whose body is Python that IPython runs as such (from memory: IPython's
 #: built-in %%time, %%timeit, %%capture and %%prun execute their cell as Python code)
@@ -297,22 +300,38 @@ class _StatementScanner:
         return comment_start
 
 
-def check_notebook(path: str, data: bytes, settings: "Settings",
+def check_notebook(path: str, data: bytes | int, settings: "Settings",
                    project: "ProjectIndex | None" = None) -> "FileResult":
-    """Lint a notebook's bytes: findings carry their cell index and line inside the cell."""
-    from nnlint.engine import PARSE_ERROR, FileResult, lint_text, parse_error_finding
+    """Lint a notebook's bytes (or, when too large to read, its size).
+
+    Findings carry their cell index and their line inside the cell.
+    """
+    from nnlint.engine import (MAX_FILE_BYTES, PARSE_ERROR, FileResult, lint_text,
+                               parse_error_finding)
     from nnlint.parsing import ParseFailure
 
+    def parse_error(error: NotebookError | ParseFailure, cell: int | None = None):
+        result = FileResult(path)
+        if settings.is_enabled(PARSE_ERROR, path):
+            finding = parse_error_finding(path, error, error.line, error.column)
+            result.findings = [replace(finding, cell=cell)]
+        return result
+
+    size = data if isinstance(data, int) else len(data)
+    if size > MAX_NOTEBOOK_BYTES:
+        return parse_error(NotebookError(f"notebook is {size / (1 << 20):.1f} MiB, over the "
+                                         f"{MAX_NOTEBOOK_BYTES >> 20} MiB limit"))
     try:
         program = read_program(data)
     except NotebookError as error:
-        result = FileResult(path)
-        if settings.is_enabled(PARSE_ERROR, path):
-            result.findings = [parse_error_finding(path, error, error.line, error.column)]
-        return result
+        return parse_error(error)
     except NotPythonNotebook as other:
         return FileResult(path, notes=[f"nnlint: {path}: kernel language {other.language!r} "
                                        f"is not Python; notebook skipped"])
+    if len(program.text) > MAX_FILE_BYTES:  # characters: at least as many bytes
+        return parse_error(NotebookError(
+            f"code cells hold {len(program.text) / (1 << 20):.1f} MiB of code, over the "
+            f"{MAX_FILE_BYTES >> 20} MiB limit for one file"))
     # IPython compiles each cell by itself: a broken cell is reported where CPython would
     # report it, not where the joined program happens to fail (possibly a later cell)
     broken = program.first_broken_cell() if program.has_open_cell else None
@@ -327,8 +346,4 @@ def check_notebook(path: str, data: bytes, settings: "Settings",
             result.findings = [program.place(finding) for finding in result.findings]
             return result
     message, cell, line, column = broken
-    result = FileResult(path)
-    if settings.is_enabled(PARSE_ERROR, path):
-        finding = parse_error_finding(path, ParseFailure(message, line, column))
-        result.findings = [replace(finding, cell=cell)]
-    return result
+    return parse_error(ParseFailure(message, line, column), cell)

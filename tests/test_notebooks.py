@@ -190,6 +190,28 @@ def test_a_broken_notebook_is_one_parse_error_finding(tmp_path, text, line, colu
         ("NNL001", None, line, column, f"{detail}; nothing else in this file was checked")]
 
 
+def test_a_notebook_too_large_to_read_is_a_parse_error():
+    result = check_notebook("huge.ipynb", 70 << 20, with_default_ignores(Settings()))
+    assert [(f.code, f.message) for f in result.findings] == [
+        ("NNL001", "notebook is 70.0 MiB, over the 64 MiB limit; nothing else in this file "
+                   "was checked")]
+
+
+def test_a_notebook_with_more_code_than_a_file_may_hold_is_a_parse_error(tmp_path):
+    # 1 MiB is the engine's per-file limit (engine.MAX_FILE_BYTES)
+    result = findings_of(tmp_path, notebook(("code", "import torch\n" + "x = 1\n" * 200_000)))
+    assert [(f.code, f.message.split(";")[0]) for f in result.findings] == [
+        ("NNL001", "code cells hold 1.1 MiB of code, over the 1 MiB limit for one file")]
+
+
+def test_outputs_do_not_count_against_the_code_limit(tmp_path):
+    document = json.loads(notebook(("code", "import torch\nmodel.eval\n")))
+    document["cells"][0]["outputs"] = [{"output_type": "display_data", "metadata": {},
+                                        "data": {"image/png": "A" * (2 << 20)}}]
+    result = findings_of(tmp_path, json.dumps(document))
+    assert [(f.code, f.cell, f.line) for f in result.findings] == [("NNL403", 0, 2)]
+
+
 def test_not_utf8_notebook_is_a_parse_error(tmp_path):
     path = tmp_path / "latin.ipynb"
     path.write_bytes(b'{"nbformat": 4, "cells": [], "x": "\xe9"}')
@@ -210,6 +232,18 @@ def test_other_kernels_are_skipped_with_a_note_and_the_run_goes_on(tmp_path):
                              "property name enclosed in double quotes; nothing else in this "
                              "file was checked\n")
     assert result.returncode == 1
+
+
+def test_cached_runs_repeat_cells_and_notes(tmp_path):
+    (tmp_path / "review.ipynb").write_text(notebook(("markdown", "# Depot"),
+                                                    ("code", "import torch\nmodel.eval\n")))
+    (tmp_path / "depots.ipynb").write_text(notebook(("code", "m$eval\n"), language="julia"))
+    first = run_cli("check", ".", cwd=tmp_path)
+    second = run_cli("check", ".", cwd=tmp_path)
+    assert first.stdout.startswith("review.ipynb:cell 2:2:1: NNL403 ")
+    assert first.stderr == "nnlint: depots.ipynb: kernel language 'julia' is not Python; " \
+                           "notebook skipped\n"
+    assert (second.returncode, second.stdout, second.stderr) == (1, first.stdout, first.stderr)
 
 
 def test_a_clean_notebook_exits_0(tmp_path):

@@ -48,6 +48,7 @@ def package_of(path: str | os.PathLike) -> tuple[str | None, str | None, Path]:
 
 
 def content_hash(data: bytes) -> str:
+    """A short digest of file contents (cache keys and dependency checks)."""
     return hashlib.blake2b(data, digest_size=16).hexdigest()
 
 
@@ -61,6 +62,10 @@ class ProjectIndex:
         self._depth = 0
         self._computed = 0
         self._module_files: dict[tuple[str, str], Path | None] = {}
+        #: files each summary was computed from (itself and what it consulted), with hashes
+        self._dependencies: dict[str, dict[str, str]] = {}
+        #: open "what did this analysis consult" records (see track/untrack)
+        self._consumers: list[dict[str, str]] = []
 
     # -- files --------------------------------------------------------------------------
     def find_module(self, module: str, importer: str) -> Path | None:
@@ -95,7 +100,22 @@ class ProjectIndex:
     # -- summaries ----------------------------------------------------------------------
     def remember(self, path: str, data: bytes, summary: "ModuleSummary | None") -> None:
         """Store the summary of a file the engine has just analysed."""
-        self._by_path[os.path.abspath(path)] = (content_hash(data), summary)
+        key = os.path.abspath(path)
+        self._by_path[key] = (content_hash(data), summary)
+        self._dependencies[key] = dict(self._consumers[-1]) if self._consumers else {}
+
+    def track(self) -> None:
+        """Start recording which files' summaries the next analysis consults."""
+        self._consumers.append({})
+
+    def untrack(self) -> dict[str, str]:
+        """Stop recording; path -> content hash of every file consulted (transitively)."""
+        return self._consumers.pop()
+
+    def _consulted(self, key: str, digest: str) -> None:
+        for consumer in self._consumers:
+            consumer[key] = digest
+            consumer.update(self._dependencies.get(key, {}))
 
     def summary_of_module(self, module: str, importer: str) -> "ModuleSummary | None":
         file = self.find_module(module, importer)
@@ -112,19 +132,24 @@ class ProjectIndex:
         digest = content_hash(data)
         cached = self._by_path.get(key)
         if cached is not None and cached[0] == digest:
+            self._consulted(key, digest)
             return cached[1]
+        self._consulted(key, digest)
         if (key in self._in_progress or self._depth >= MAX_DEPTH
                 or self._computed >= MAX_SUMMARIES):
             return None
         self._in_progress.add(key)
         self._depth += 1
         self._computed += 1
+        self._consumers.append({})
         try:
             summary = self._compute(key, data)
         finally:
+            self._dependencies[key] = self._consumers.pop()
             self._depth -= 1
             self._in_progress.discard(key)
         self._by_path[key] = (digest, summary)
+        self._consulted(key, digest)
         return summary
 
     def _compute(self, path: str, data: bytes) -> "ModuleSummary | None":

@@ -7,9 +7,9 @@ from __future__ import annotations
 
 import libcst as cst
 
-#: node types whose nesting rules ask about
-_TRACKED = (cst.FunctionDef, cst.ClassDef, cst.With, cst.For, cst.While, cst.If, cst.Try,
-            cst.Lambda)
+#: node types whose nesting rules ask about (exact types: libcst nodes are not subclassed)
+TRACKED_TYPES = frozenset({cst.FunctionDef, cst.ClassDef, cst.With, cst.For, cst.While, cst.If,
+                           cst.Try, cst.TryStar, cst.Lambda})
 
 
 class WalkContext:
@@ -26,20 +26,20 @@ class WalkContext:
         self.blocks: list[cst.CSTNode] = []
 
     def enter(self, node: cst.CSTNode) -> None:
-        if isinstance(node, _TRACKED):
-            self.blocks.append(node)
-            if isinstance(node, cst.FunctionDef):
-                self.functions.append(node)
-            elif isinstance(node, cst.ClassDef):
-                self.classes.append(node)
+        """Called for nodes of TRACKED_TYPES only, before rules visit them."""
+        self.blocks.append(node)
+        if type(node) is cst.FunctionDef:
+            self.functions.append(node)
+        elif type(node) is cst.ClassDef:
+            self.classes.append(node)
 
     def leave(self, node: cst.CSTNode) -> None:
-        if isinstance(node, _TRACKED):
-            self.blocks.pop()
-            if isinstance(node, cst.FunctionDef):
-                self.functions.pop()
-            elif isinstance(node, cst.ClassDef):
-                self.classes.pop()
+        """Called for nodes of TRACKED_TYPES only, after rules left them."""
+        self.blocks.pop()
+        if type(node) is cst.FunctionDef:
+            self.functions.pop()
+        elif type(node) is cst.ClassDef:
+            self.classes.pop()
 
     @property
     def function(self) -> cst.FunctionDef | None:
