@@ -6,6 +6,7 @@ its staged and modified tracked files: a new, untracked `.pre-commit-hooks.yaml`
 """
 import json
 import os
+import re
 import shutil
 import subprocess
 import sys
@@ -101,3 +102,48 @@ def test_hook_fails_on_a_hazard_and_passes_once_fixed(checkout, tmp_path):
     assert passing.returncode == 0, output
     assert "NNL403" not in output
     assert "Passed" in output, output
+
+
+def readme_block(name: str) -> str:
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    block = re.search(rf"<!-- {name}:start -->\s*```yaml\n(.*?)```", readme, re.S)
+    assert block, f"README.md lacks the {name} block between its markers"
+    return block.group(1)
+
+
+def test_readme_remote_snippet_is_a_valid_config_for_this_hook(tmp_path):
+    from pre_commit.clientlib import load_config, load_manifest
+
+    config_file = tmp_path / ".pre-commit-config.yaml"
+    config_file.write_text(readme_block("pre-commit-remote"))
+    config = load_config(str(config_file))
+    hook_ids = {hook["id"] for hook in load_manifest(str(ROOT / ".pre-commit-hooks.yaml"))}
+    assert [hook["id"] for hook in config["repos"][0]["hooks"]] == ["nnlint"]
+    assert hook_ids == {"nnlint"}
+
+
+def test_readme_local_snippet_runs_the_installed_nnlint(tmp_path):
+    if shutil.which("git") is None:
+        pytest.skip("git is not installed")
+    project = tmp_path / "kestrel-depot"
+    project.mkdir()
+    environment = clean_environment(tmp_path)
+    # a `language: system` hook runs the nnlint of the committing environment: this one
+    environment["PATH"] = os.pathsep.join([os.path.dirname(sys.executable),
+                                           environment.get("PATH", "")])
+    if os.environ.get("PYTHONPATH"):
+        environment["PYTHONPATH"] = os.environ["PYTHONPATH"]
+    git("init", "-q", cwd=project)
+    (project / ".pre-commit-config.yaml").write_text(readme_block("pre-commit-local"))
+    (project / "train_routes.py").write_text(HAZARD)
+    git("add", ".", cwd=project)
+    command = [sys.executable, "-m", "pre_commit", "run", "--all-files", "--color", "never"]
+    failing = subprocess.run(command, cwd=project, capture_output=True, text=True,
+                             env=environment, timeout=300)
+    assert failing.returncode == 1, failing.stdout + failing.stderr
+    assert "train_routes.py:3:1: NNL403 `route_net.eval`" in failing.stdout
+    (project / "train_routes.py").write_text(FIXED)
+    git("add", ".", cwd=project)
+    passing = subprocess.run(command, cwd=project, capture_output=True, text=True,
+                             env=environment, timeout=300)
+    assert passing.returncode == 0, passing.stdout + passing.stderr
