@@ -111,6 +111,8 @@ def is_notebook(path: str) -> bool:
 
 def read_program(data: bytes) -> NotebookProgram:
     """Parse notebook bytes into one program; raises NotebookError or NotPythonNotebook."""
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]  # a UTF-8 byte order mark, which some editors write (RFC 8259 §8.1)
     try:
         # json.loads on bytes detects UTF-8/16/32 as RFC 8259 allows
         document = json.loads(data)

@@ -98,6 +98,11 @@ def test_a_cell_marked_as_another_language_is_left_out():
     assert program.line_map == ((0, 1), (2, 1))
 
 
+def test_a_byte_order_mark_is_accepted():
+    program = read_program(b"\xef\xbb\xbf" + notebook(("code", "import torch\n")).encode())
+    assert program.text == "import torch\n"
+
+
 def test_string_source_and_crlf_lines_are_read():
     document = json.loads(notebook(("code", "")))
     document["cells"][0]["source"] = "import torch\r\nmodel.eval\r\n"

@@ -1,5 +1,10 @@
 """SARIF 2.1.0 output, validated against the official OASIS schema."""
 import json
+import os
+import re
+import subprocess
+import sys
+from pathlib import Path
 
 import jsonschema
 import pytest
@@ -7,7 +12,7 @@ import pytest
 from nnlint import __version__
 from nnlint.report.sarif import artifact_uri
 from nnlint.rules.base import all_rules
-from tests.conftest import FIXTURES, SHARED_STANDARDS, run_cli
+from tests.conftest import FIXTURES, ROOT, SHARED_STANDARDS, run_cli
 
 SCHEMA_FILE = SHARED_STANDARDS / "sarif-schema-2.1.0.json"
 
@@ -120,3 +125,26 @@ def test_unreadable_paths_make_the_invocation_unsuccessful(tmp_path, sarif_valid
 
 def test_absolute_paths_become_file_uris(tmp_path):
     assert artifact_uri(str(tmp_path / "a b.py")) == (tmp_path / "a b.py").as_uri()
+
+
+def test_readme_ci_recipe_keeps_the_report_and_fails_on_findings(tmp_path):
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    recipe = re.search(r"<!-- ci-recipe:start -->\s*```sh\n(.*?)```", readme, re.S).group(1)
+    (tmp_path / "src").mkdir()
+    (tmp_path / "src" / "train.py").write_text("import torch\nnet = torch.nn.Linear(2, 2)\n"
+                                               "net.eval\n")
+    (tmp_path / "notebooks").mkdir()
+    (tmp_path / "notebooks" / "review.ipynb").write_bytes(
+        (FIXTURES / "notebooks" / "kestrel_delay_review.ipynb").read_bytes())
+    environment = dict(os.environ, PATH=os.pathsep.join([str(Path(sys.executable).parent),
+                                                         os.environ.get("PATH", "")]))
+    environment.pop("NNLINT_STRICT", None)
+    result = subprocess.run(["sh", "-e", "-c", recipe], cwd=tmp_path, capture_output=True,
+                            text=True, env=environment, timeout=300)
+    assert (result.returncode, result.stderr) == (1, "")
+    document = json.loads((tmp_path / "results.sarif").read_text())
+    located = [(result["locations"][0]["physicalLocation"]["artifactLocation"]["uri"],
+                result["locations"][0]["physicalLocation"]["region"]["startLine"])
+               for result in document["runs"][0]["results"]]
+    assert located == [("notebooks/review.ipynb", 2), ("notebooks/review.ipynb", 2),
+                       ("src/train.py", 3)]
