@@ -16,6 +16,7 @@ from nnlint.rules.base import Rule, all_rules
 
 EXIT_CLEAN, EXIT_FINDINGS, EXIT_ERROR = 0, 1, 2
 FORMATS = ("text", "json")
+CHECK_FORMATS = (*FORMATS, "sarif")
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -31,7 +32,7 @@ def _parser() -> argparse.ArgumentParser:
                                 description="Check Python files and folders for training hazards.")
     check.add_argument("paths", nargs="*", default=["."], metavar="PATH",
                        help="files or folders to check (default: the current folder)")
-    check.add_argument("--format", choices=FORMATS, default="text",
+    check.add_argument("--format", choices=CHECK_FORMATS, default="text",
                        help="output format (default: text, `path:line:col: CODE message`)")
     _add_selection_flags(check)
     check.add_argument("--no-cache", action="store_true",
@@ -127,10 +128,15 @@ def _check(arguments: argparse.Namespace) -> int:
         progress.close()
     if arguments.format == "json":
         sys.stdout.write(json_report.render(report.findings))
+    elif arguments.format == "sarif":
+        from nnlint.report import sarif as sarif_report
+
+        problems = report.messages + [error.describe() for error in report.errors]
+        sys.stdout.write(sarif_report.render(report.findings, problems))
     else:
         sys.stdout.write(text_report.render(report.findings))
     sys.stdout.flush()
-    for message in report.messages:
+    for message in report.messages + report.notes:
         print(message, file=sys.stderr)
     for error in report.errors:
         print(error.describe(), file=sys.stderr)
@@ -191,6 +197,8 @@ def _fix(arguments: argparse.Namespace) -> int:
     remaining = []
     for path in discover([p for p in arguments.paths if os.path.lexists(p)], settings.exclude,
                          settings.root):
+        if path.endswith(".ipynb"):
+            continue  # notebooks are checked, not rewritten (see README)
         result = fix_file(path, settings, project, write=not arguments.diff)
         messages += result.messages
         remaining += result.remaining

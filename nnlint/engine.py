@@ -18,7 +18,7 @@ from typing import Callable, Iterable, Sequence
 import libcst as cst
 from libcst.metadata import MetadataWrapper, PositionProvider
 
-from nnlint import noqa
+from nnlint import noqa, notebooks
 from nnlint.cache import ResultCache
 from nnlint.analysis.api import FRAMEWORK_PACKAGES
 from nnlint.analysis.model import ModuleModel
@@ -72,6 +72,9 @@ class FileResult:
     messages: list[str] = field(default_factory=list)
     #: (finding, rewrite) pairs; only filled for `nnlint fix` (CST nodes stay in-process)
     fixes: list[tuple[Finding, Fix]] = field(default_factory=list)
+    #: one-line notices on stderr that do not change the exit status (a notebook of
+    #: another language, skipped as a folder's non-Python files are)
+    notes: list[str] = field(default_factory=list)
 
 
 #: node fields that hold only layout (whitespace, brackets, separators): never walked
@@ -326,11 +329,12 @@ def read_source(path: str) -> bytes | str:
     if not stat.S_ISREG(status.st_mode):
         # FIFOs and devices would block or never end; never open them
         return f"nnlint: {path}: not a regular file; skipped"
-    if status.st_size > MAX_FILE_BYTES:
+    limit = notebooks.MAX_NOTEBOOK_BYTES if notebooks.is_notebook(path) else MAX_FILE_BYTES
+    if status.st_size > limit:
         return status.st_size
     try:
         with open(path, "rb") as handle:
-            return handle.read(MAX_FILE_BYTES + 1)
+            return handle.read(limit + 1)
     except OSError as error:
         return f"nnlint: {path}: cannot read: {error.strerror or type(error).__name__}"
 
@@ -346,6 +350,8 @@ def check_file(path: str, settings: Settings, project: ProjectIndex | None = Non
 def check_data(path: str, data: bytes | int, settings: Settings,
                project: ProjectIndex | None = None) -> FileResult:
     """Lint a file's bytes (or, for an oversized file, its size)."""
+    if notebooks.is_notebook(path):
+        return notebooks.check_notebook(path, data, settings, project)
     if isinstance(data, int) or len(data) > MAX_FILE_BYTES:
         size = data if isinstance(data, int) else len(data)
         result = FileResult(path)
@@ -370,6 +376,7 @@ class RunReport:
     files_checked: int
     errors: list[InternalError]
     messages: list[str]
+    notes: list[str] = field(default_factory=list)
 
 
 class _Checker:
@@ -400,7 +407,7 @@ class _Checker:
             result = check_data(path, data, self.settings, self.project)
         finally:
             dependencies = self.project.untrack()
-        if not result.errors and not result.messages:
+        if not result.errors and not result.messages and not result.notes:
             dependencies.pop(os.path.abspath(path), None)
             self.cache.put(path, data, result.findings, dependencies)
         return result
@@ -469,4 +476,5 @@ def run_paths(paths: Iterable[str], settings: Settings | None = None,
         errors.extend(result.errors)
         messages.extend(result.messages)
     findings.sort(key=Finding.sort_key)
-    return RunReport(findings, len(files), errors, messages)
+    notes = [note for path in files for note in done[path].notes]
+    return RunReport(findings, len(files), errors, messages, notes)

@@ -13,7 +13,8 @@ SKIPPED_FOLDERS = frozenset({
     "__pycache__", "node_modules", "build", "dist", "site-packages", "venv", "env",
     "_build", "htmlcov", "wandb", "mlruns", "lightning_logs",
 })
-SOURCE_SUFFIXES = (".py",)
+#: Python files and Jupyter notebooks (nnlint/notebooks.py)
+SOURCE_SUFFIXES = (".py", ".ipynb")
 
 
 class DecodeError(Exception):

@@ -8,7 +8,10 @@ import pytest
 os.environ["NNLINT_STRICT"] = "1"
 ROOT = Path(__file__).resolve().parent.parent
 FIXTURES = ROOT / "fixtures"
-SHARED_STANDARDS = ROOT.parent / "shared" / "standards"
+#: published standards documents (shared/standards/README.md); NNLINT_STANDARDS_DIR overrides
+#: the default `../shared/standards` beside the project root, e.g. for a git worktree
+SHARED_STANDARDS = Path(os.environ.get("NNLINT_STANDARDS_DIR")
+                        or ROOT.parent / "shared" / "standards")
 
 
 @pytest.fixture

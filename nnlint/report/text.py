@@ -1,4 +1,10 @@
-"""`path:line:col: CODE message`, the line format editors and flake8 users parse."""
+r"""`path:line:col: CODE message`, the line format editors and flake8 users parse.
+
+A notebook finding reads `analysis.ipynb:cell 4:2:5: CODE message`: line 2, column 5 of the
+fourth cell, counting cells from 1 as people do (markdown cells count too; the JSON and
+SARIF outputs give the 0-based index, 3). The usual `(.+):(\d+):(\d+): ` pattern still
+splits it, with `analysis.ipynb:cell 4` as the place.
+"""
 from __future__ import annotations
 
 from typing import Iterable
@@ -10,9 +16,16 @@ from nnlint.finding import Finding
 FIXABLE_MARKER = " (fixable)"
 
 
+def place(finding: Finding) -> str:
+    """The path, and for a notebook the 1-based cell number."""
+    if finding.cell is None:
+        return finding.path
+    return f"{finding.path}:cell {finding.cell + 1}"
+
+
 def format_finding(finding: Finding) -> str:
     marker = FIXABLE_MARKER if finding.fixable else ""
-    return (f"{finding.path}:{finding.line}:{finding.column}: {finding.code} "
+    return (f"{place(finding)}:{finding.line}:{finding.column}: {finding.code} "
             f"{finding.message}{marker}")
 
 
