@@ -181,8 +181,7 @@ def graph_carrier(expr: cst.BaseExpression) -> cst.Name | None:
         if isinstance(expr, cst.UnaryOperation):
             expr = expr.expression
         elif isinstance(expr, cst.Call) and isinstance(expr.func, cst.Attribute):
-            if expr.func.attr.value in DETACHING_METHODS:
-                return None
+            # only methods known to keep the history pass it on (`.item()` does not)
             if expr.func.attr.value not in _HISTORY_KEEPING_METHODS:
                 return None
             expr = expr.func.value
