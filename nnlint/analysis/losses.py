@@ -56,12 +56,16 @@ def loss_of_call(model: "ModuleModel", call: cst.Call,
         spec = specs.pop()
         label = model.module.code_for_node(func)
         return _use(spec, call, call, label, constructed=False)
-    construction = _construction(model, func, function)
-    if construction is None:
+    built = _constructions(model, func, function)
+    if built is None:
         return None
-    spec, built = construction
-    label = model.module.code_for_node(built.func).rpartition(".")[2]
-    return _use(spec, built, call, label, constructed=True)
+    uses = []
+    for spec, construction in built:
+        label = model.module.code_for_node(construction.func).rpartition(".")[2]
+        uses.append(_use(spec, construction, call, label, constructed=True))
+    if None in uses or len({(use.spec, use.expects) for use in uses}) != 1:
+        return None  # bound to different losses, or configured differently
+    return uses[0]
 
 
 def keras_compiled_loss(model: "ModuleModel", call: cst.Call,
@@ -115,28 +119,26 @@ def _compiled(model: "ModuleModel", value: cst.BaseExpression,
     return None
 
 
-def _construction(model: "ModuleModel", func: cst.BaseExpression,
-                  function: cst.FunctionDef | None) -> tuple[LossSpec, cst.Call] | None:
-    """(spec, construction call) when `func` is a loss object: built inline or bound once."""
+def _constructions(model: "ModuleModel", func: cst.BaseExpression,
+                   function: cst.FunctionDef | None) -> list[tuple[LossSpec, cst.Call]] | None:
+    """(spec, construction) of every value `func` may hold, when each is a loss object."""
     if isinstance(func, cst.Call):
         built = [func]
     elif isinstance(func, (cst.Name, cst.Attribute)):
         built = bound_values(model, func, function)
     else:
         return None
-    if not built or not all(isinstance(value, cst.Call) for value in built):
+    if not built:
         return None
-    found = set()
+    found = []
     for value in built:
-        names = model.resolve(value.func)
-        specs = {LOSS_CLASSES.get(name) for name in names}
+        if not isinstance(value, cst.Call):
+            return None
+        specs = {LOSS_CLASSES.get(name) for name in model.resolve(value.func)}
         if len(specs) != 1 or None in specs:
             return None
-        found.add((specs.pop(), model.module.code_for_node(value)))
-    if len(found) != 1:
-        return None  # bound to different losses (or differently configured ones)
-    spec = found.pop()[0]
-    return spec, built[0]
+        found.append((specs.pop(), value))
+    return found
 
 
 def _use(spec: LossSpec, configured: cst.Call, call: cst.Call | None, label: str,
