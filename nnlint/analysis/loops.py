@@ -392,6 +392,10 @@ class _Scanner:
             self.expression(arg.value, flags, out, depth + 1)
         event = self._classify(call, method, function)
         if event is not None:
+            if event[0] is EventKind.STEP:
+                custom = self._local_step(call.func.value, function)  # type: ignore
+                if custom is not None:  # a hand-written optimizer: what its step() does
+                    out.extend(_inlined(self.function(custom), flags))
             out.append(Event(event[0], call, *flags, discarded=discarded, target=event[1]))
             return
         if method is None and not isinstance(func, cst.Name):
@@ -449,6 +453,16 @@ class _Scanner:
             if info is not None:
                 return _method(model, info, func.attr.value, set())
         return None
+
+    def _local_step(self, receiver: cst.BaseExpression, function) -> cst.FunctionDef | None:
+        """The `step` method of the class of this file that `receiver` is an instance of."""
+        values = bound_values(self.model, receiver, function)
+        classes = {value.func.value for value in values
+                   if isinstance(value, cst.Call) and isinstance(value.func, cst.Name)}
+        if len(classes) != 1 or len(values) != 1:
+            return None
+        info = self.model.classes.get(classes.pop())
+        return _method(self.model, info, "step", set()) if info is not None else None
 
     def _is_known_call(self, func: cst.BaseExpression) -> bool:
         """True for builtins and functions of installed libraries (they reset nothing)."""

@@ -17,7 +17,8 @@ import libcst as cst
 
 from nnlint.analysis.api.losses import (
     CLASS_COUNT_ARGUMENTS, KERAS_COMPILE, KERAS_COMPILE_LOSS_POSITION, KERAS_EPSILON,
-    KERAS_LOSS_CLASSES, KERAS_LOSS_STRINGS, LOSS_CLASSES, LOSS_FUNCTIONS, Expects, LossSpec,
+    KERAS_LOSS_CLASSES, KERAS_LOSS_STRINGS, LAYER_PREFIXES, LOSS_CLASSES, LOSS_FUNCTIONS,
+    STACK_EDIT_METHODS, Expects, LossSpec,
 )
 from nnlint.analysis.loops import bound_values
 from nnlint.analysis.values import Fact, constant_value, reaching_values
@@ -152,8 +153,7 @@ def _use(spec: LossSpec, configured: cst.Call, call: cst.Call | None, label: str
         return None
     if not spec.has_from_logits:
         return LossUse(spec, spec.expects, prediction, label)
-    # a construction takes from_logits among its own arguments; a function after y_pred
-    flag = _from_logits(configured, spec, 0 if constructed else spec.position + 1)
+    flag = _from_logits(configured, spec, constructed)
     if flag is None:
         return None
     value, is_default = flag
@@ -163,23 +163,23 @@ def _use(spec: LossSpec, configured: cst.Call, call: cst.Call | None, label: str
     return LossUse(spec, expects, prediction, label, from_logits_default=is_default)
 
 
-def _from_logits(call: cst.Call, spec: LossSpec, required: int) -> tuple[bool, bool] | None:
+def _from_logits(call: cst.Call, spec: LossSpec,
+                 constructed: bool) -> tuple[bool, bool] | None:
     """(from_logits, left at its default) of a Keras loss call; None when not a literal.
 
-    `required` positional arguments come before any that could be from_logits.
+    A construction takes from_logits among its own parameters, a function after y_pred.
     """
+    position = spec.class_from_logits_position if constructed else spec.from_logits_position
     positional = 0
     for arg in call.args:
         if arg.star:
             return None  # `**config` may set it
         if arg.keyword is None:
-            if positional == spec.from_logits_position:
+            if positional == position:
                 return _literal_bool(arg.value)
             positional += 1
         elif arg.keyword.value == "from_logits":
             return _literal_bool(arg.value)
-    if spec.from_logits_position is None and positional > required:
-        return None  # positional arguments we cannot place may include it
     return False, True
 
 
@@ -203,6 +203,64 @@ def _argument(call: cst.Call, position: int,
             return arg.value
         index += 1
     return None
+
+
+def edits_layer_stacks(model: "ModuleModel") -> bool:
+    """True when some statement of the file appends a layer to a built model.
+
+    Value facts read a stack's last layer from its constructor; `model.add(Activation(...))`
+    later makes that reading wrong, so raw-score verdicts on models are not trusted here.
+    """
+    memo = model.memo.setdefault("losses", {})
+    if "edits" not in memo:
+        memo["edits"] = _edits_in(model, model.module.body, 0)
+    return memo["edits"]
+
+
+def _edits_in(model: "ModuleModel", body, depth: int) -> bool:
+    if depth > 20:  # common practice: real code nests far less; deeper means "unknown"
+        return True
+    for statement in body:
+        if isinstance(statement, cst.SimpleStatementLine):
+            for small in statement.body:
+                if isinstance(small, cst.Expr) and _is_stack_edit(model, small.value):
+                    return True
+        elif isinstance(statement, cst.BaseCompoundStatement):
+            for block in _blocks(statement):
+                if isinstance(block, cst.IndentedBlock) and _edits_in(model, block.body,
+                                                                      depth + 1):
+                    return True
+    return False
+
+
+def _blocks(statement: cst.BaseCompoundStatement) -> list[cst.BaseSuite]:
+    blocks = [statement.body]
+    if isinstance(statement, (cst.Try, cst.TryStar)):
+        blocks += [handler.body for handler in statement.handlers]
+        blocks += [part.body for part in (statement.orelse, statement.finalbody) if part]
+    elif isinstance(statement, (cst.For, cst.While)) and statement.orelse is not None:
+        blocks.append(statement.orelse.body)
+    elif isinstance(statement, cst.If):
+        orelse = statement.orelse
+        while orelse is not None:
+            blocks.append(orelse.body)
+            orelse = orelse.orelse if isinstance(orelse, cst.If) else None
+    elif isinstance(statement, cst.Match):
+        blocks += [case.body for case in statement.cases]
+    return blocks
+
+
+def _is_stack_edit(model: "ModuleModel", expr: cst.BaseExpression) -> bool:
+    if not isinstance(expr, cst.Call) or not isinstance(expr.func, cst.Attribute):
+        return False
+    if expr.func.attr.value not in STACK_EDIT_METHODS:
+        return False
+    for arg in expr.args:
+        value = arg.value
+        if isinstance(value, cst.Call) and any(name.startswith(LAYER_PREFIXES)
+                                               for name in model.resolve(value.func)):
+            return True
+    return False
 
 
 # -- consequences ------------------------------------------------------------------------------

@@ -6,7 +6,7 @@ import libcst as cst
 from nnlint.analysis.api.losses import KERAS_EPSILON, Expects
 from nnlint.analysis.losses import (
     LossUse, class_count, double_sigmoid_range, double_softmax_ceiling, double_softmax_floor,
-    keras_clip_floor_loss, keras_compiled_loss, loss_of_call,
+    edits_layer_stacks, keras_clip_floor_loss, keras_compiled_loss, loss_of_call,
 )
 from nnlint.analysis.values import Fact, Kind, call_result, fact_of
 from nnlint.finding import Severity
@@ -59,11 +59,12 @@ class ProbabilitiesIntoLogitLoss(_LossRule):
         "optax's cross-entropies, Keras losses with from_logits=True) apply softmax or "
         "sigmoid themselves. Given probabilities, they normalise a second time. Inputs in "
         "[0, 1] differ by at most 1, so a second softmax over C classes gives the top class "
-        "at most e/(e+C-1): for 10 classes 0.232, so the cross-entropy can never fall below "
-        "-log(0.232) = 1.46, and its gradient shrinks by the softmax Jacobian (both checked "
-        "with numpy in tests/test_losses_references.py). A second sigmoid maps every "
-        "prediction into [0.5, 0.731]. Training runs, the loss plateaus high, and confident "
-        "predictions are never rewarded."
+        f"at most e/(e+C-1): for 10 classes {double_softmax_ceiling(10):.3f}, so the "
+        f"cross-entropy can never fall below {double_softmax_floor(10):.2f}, and its gradient "
+        "shrinks by the softmax Jacobian (both checked with numpy and scipy in "
+        "tests/test_losses_references.py). A second sigmoid maps every prediction into "
+        f"[{double_sigmoid_range()[0]:.1f}, {double_sigmoid_range()[1]:.3f}]. Training runs, "
+        "the loss plateaus high, and confident predictions are never rewarded."
     )
     bad = ("scores = head(features)\n"
            "probs = torch.softmax(scores, dim=-1)\n"
@@ -109,9 +110,10 @@ class LogitsIntoProbabilityLoss(_LossRule):
         "KLDivLoss take log-probabilities: on raw scores NLLLoss is just -score[target], "
         "unbounded below, so the model lowers the loss by inflating one score. Keras "
         "cross-entropies with from_logits=False (the default, and every "
-        "`compile(loss=\"...\")` string) clip y_pred to [1e-7, 1 - 1e-7] "
-        "(keras.backend.epsilon()): every score outside that range costs up to "
-        "-log(1e-7) = 16.1 with zero gradient."
+        f"`compile(loss=\"...\")` string) clip y_pred to [{KERAS_EPSILON:g}, "
+        f"1 - {KERAS_EPSILON:g}] (keras.backend.epsilon()): every score outside that range "
+        f"costs up to -log({KERAS_EPSILON:g}) = {keras_clip_floor_loss():.1f} with zero "
+        "gradient."
     )
     bad = ("scores = nn.Linear(64, 1)(features).squeeze(-1)\n"
            "loss = F.binary_cross_entropy(scores, seals)")
@@ -126,6 +128,8 @@ class LogitsIntoProbabilityLoss(_LossRule):
     def judge(self, node: cst.CSTNode, use: LossUse, fact: Fact, subject: str) -> None:
         if use.expects is Expects.LOGITS or fact.kind is not Kind.LOGITS:
             return
+        if edits_layer_stacks(self.model):
+            return  # a layer appended later (an activation?) may end the model
         if use.spec.has_from_logits:
             consequence = (f"clipped to [{KERAS_EPSILON:g}, 1 - {KERAS_EPSILON:g}], up to "
                            f"{keras_clip_floor_loss():.1f} loss with zero gradient")

@@ -32,8 +32,10 @@ class LossSpec:
     keywords: tuple[str, ...]
     #: Keras: the `from_logits` flag switches `expects` to LOGITS when True
     has_from_logits: bool = False
-    #: where `from_logits` sits among the positional arguments (None: keyword only)
+    #: where `from_logits` sits among the positional arguments of the loss function
     from_logits_position: int | None = None
+    #: where it sits among the positional arguments of the loss class's constructor
+    class_from_logits_position: int | None = None
 
 
 def _torch(expects: Expects, activation: str) -> LossSpec:
@@ -77,29 +79,30 @@ LOSS_FUNCTIONS["tensorflow.compat.v1.losses.sigmoid_cross_entropy"] = _TF_SIGMOI
 # Keras: objects are built with `from_logits` as their first parameter and called as
 # loss(y_true, y_pred); functions are loss(y_true, y_pred, from_logits=False, ...).
 _KERAS_LOSSES = {
-    # function name: (class name, activation, from_logits position of function, of class)
+    # function name: (class name, activation, from_logits position among the function's
+    # positionals, among the class's), from the tf.keras.losses signatures (TF 2.13-2.16 docs)
     "categorical_crossentropy": ("CategoricalCrossentropy", "softmax", 2, 0),
     "sparse_categorical_crossentropy": ("SparseCategoricalCrossentropy", "softmax", 2, 0),
     "binary_crossentropy": ("BinaryCrossentropy", "sigmoid", 2, 0),
-    # the focal losses take alpha/gamma first: from_logits is read only as a keyword
-    "categorical_focal_crossentropy": ("CategoricalFocalCrossentropy", "softmax", None, None),
-    "binary_focal_crossentropy": ("BinaryFocalCrossentropy", "sigmoid", None, None),
+    # (y_true, y_pred, alpha, gamma, from_logits) and (alpha, gamma, from_logits)
+    "categorical_focal_crossentropy": ("CategoricalFocalCrossentropy", "softmax", 4, 2),
+    # (y_true, y_pred, apply_class_balancing, alpha, gamma, from_logits) and the class alike
+    "binary_focal_crossentropy": ("BinaryFocalCrossentropy", "sigmoid", 5, 3),
 }
 #: Keras loss strings accepted by `model.compile(loss="...")`: from_logits is always False
 KERAS_LOSS_STRINGS: dict[str, LossSpec] = {}
 #: Keras loss classes: canonical name -> spec of the instance call
 KERAS_LOSS_CLASSES: dict[str, LossSpec] = {}
 for _name, (_class, _activation, _in_function, _in_class) in _KERAS_LOSSES.items():
-    _function_spec = LossSpec(Expects.PROB, _activation, 1, ("y_pred",), True, _in_function)
+    _function_spec = LossSpec(Expects.PROB, _activation, 1, ("y_pred",), True, _in_function,
+                              _in_class)
     KERAS_LOSS_STRINGS[_name] = _function_spec
     for _prefix in ("tensorflow.keras.losses", "tensorflow.keras.metrics"):
         LOSS_FUNCTIONS[f"{_prefix}.{_name}"] = _function_spec
-    if _in_function is not None:
-        # keras.backend.<loss>(target, output, from_logits=False, ...)
-        LOSS_FUNCTIONS[f"tensorflow.keras.backend.{_name}"] = LossSpec(
-            Expects.PROB, _activation, 1, ("output",), True, 2)
-    KERAS_LOSS_CLASSES[f"tensorflow.keras.losses.{_class}"] = LossSpec(
-        Expects.PROB, _activation, 1, ("y_pred",), True, _in_class)
+    # keras.backend.<loss>(target, output, ...): the same positions as the function
+    LOSS_FUNCTIONS[f"tensorflow.keras.backend.{_name}"] = LossSpec(
+        Expects.PROB, _activation, 1, ("output",), True, _in_function, _in_class)
+    KERAS_LOSS_CLASSES[f"tensorflow.keras.losses.{_class}"] = _function_spec
 LOSS_CLASSES.update(KERAS_LOSS_CLASSES)
 
 #: the method that takes a Keras model's loss, and where `loss` sits among its positionals
@@ -129,3 +132,9 @@ CLASS_COUNT_ARGUMENTS: dict[str, tuple[int, str]] = {
     "tensorflow.keras.layers.Dense": (0, "units"),
     "flax.linen.Dense": (0, "features"),
 }
+
+#: methods that add layers to a model after it is built (`model.add(layers.Activation(...))`,
+#: `net.append(nn.Sigmoid())`): the last layer written in the constructor may not be the last
+STACK_EDIT_METHODS = frozenset({"add", "append", "add_module", "insert", "extend"})
+#: canonical-name prefixes of layers, for recognising such an edit
+LAYER_PREFIXES = ("torch.nn.", "tensorflow.keras.layers.", "flax.linen.")
