@@ -73,16 +73,16 @@ class Rule:
         self._sink = sink
 
     def report(self, node: cst.CSTNode, severity: Severity | None = None,
-               fix: Fix | None = None, **fields: object) -> None:
+               autofix: Fix | None = None, **fields: object) -> None:
         """Record a finding at `node`; the message is the template filled with `fields`.
 
         `severity` overrides the rule's default for this finding (for rules whose certainty
         depends on what is known, e.g. a warning that becomes an error with more evidence).
-        `fix` is the rewrite `nnlint fix` may apply; give one only when it is unambiguous and
+        `autofix` is the rewrite `nnlint fix` may apply; give one only when it is unambiguous and
         changes nothing but the bug.
         """
         self._sink.append(Report(type(self), node, self.message.format(**fields),
-                                 severity=severity, fix=fix))
+                                 severity=severity, fix=autofix))
 
     @classmethod
     def message_fields(cls) -> set[str]:

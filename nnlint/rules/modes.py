@@ -38,4 +38,4 @@ class ModeSwitchNotCalled(Rule):
             return
         expression = self.model.module.code_for_node(target)
         self.report(target, expression=expression, consequence=consequence,
-                    fix=Fix(target, cst.Call(func=target)))
+                    autofix=Fix(target, cst.Call(func=target)))

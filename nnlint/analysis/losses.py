@@ -1,0 +1,375 @@
+"""Loss pairing: which loss a call computes, what it expects, and what it is given.
+
+A loss is recognised three ways: a loss function called directly (`F.cross_entropy(x, y)`,
+`optax.softmax_cross_entropy(logits, labels)`), a criterion object called (`criterion(x, y)`
+with `criterion = nn.CrossEntropyLoss()`, `self.loss_fn = keras.losses...`, followed through
+the bindings of ModuleModel), and a Keras `model.compile(loss=...)` (an object, a function or
+a string). The consequence numbers of feeding a loss the wrong kind of input are computed here
+(with `math`, from the formulas cited beside each) so the rules only format them.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import libcst as cst
+
+from nnlint.analysis.api.losses import (
+    CLASS_COUNT_ARGUMENTS, KERAS_COMPILE, KERAS_COMPILE_LOSS_POSITION, KERAS_EPSILON,
+    KERAS_LOSS_CLASSES, KERAS_LOSS_STRINGS, LAYER_PREFIXES, LOSS_CLASSES, LOSS_FUNCTIONS,
+    STACK_EDIT_METHODS, Expects, LossSpec,
+)
+from nnlint.analysis.loops import bound_values
+from nnlint.analysis.values import Fact, constant_value, reaching_values
+
+if TYPE_CHECKING:
+    from nnlint.analysis.model import ModuleModel
+
+#: packages whose files may compile a Keras model
+KERAS_PACKAGES = frozenset({"tensorflow", "keras", "tf_keras"})
+
+
+@dataclass(frozen=True)
+class LossUse:
+    """One computation of a loss: what it expects and which argument is the prediction."""
+
+    spec: LossSpec
+    #: what the prediction must be, after Keras's `from_logits`
+    expects: Expects
+    #: the prediction argument (None for `compile`, where the model's output is the input)
+    prediction: cst.BaseExpression | None
+    #: the loss as a reader knows it: `CrossEntropyLoss`, `F.cross_entropy`, ...
+    label: str
+    #: True when Keras's from_logits was left at its default (False)
+    from_logits_default: bool = False
+
+
+def loss_of_call(model: "ModuleModel", call: cst.Call,
+                 function: cst.FunctionDef | None) -> LossUse | None:
+    """The loss `call` computes, or None (unknown callee, or a from_logits we cannot read)."""
+    func = call.func
+    names = model.resolve(func)
+    if names:
+        specs = {LOSS_FUNCTIONS.get(name) for name in names}
+        if len(specs) != 1 or None in specs:
+            return None
+        spec = specs.pop()
+        label = model.module.code_for_node(func)
+        return _use(spec, call, call, label, constructed=False)
+    built = _constructions(model, func, function)
+    if built is None:
+        return None
+    uses = []
+    for spec, construction in built:
+        label = model.module.code_for_node(construction.func).rpartition(".")[2]
+        uses.append(_use(spec, construction, call, label, constructed=True))
+    if None in uses or len({(use.spec, use.expects) for use in uses}) != 1:
+        return None  # bound to different losses, or configured differently
+    return uses[0]
+
+
+def keras_compiled_loss(model: "ModuleModel", call: cst.Call,
+                        function: cst.FunctionDef | None
+                        ) -> tuple[LossUse, cst.BaseExpression, cst.BaseExpression] | None:
+    """(loss, the model compiled, the loss argument) of a Keras `model.compile(loss=...)`."""
+    func = call.func
+    if not isinstance(func, cst.Attribute) or func.attr.value != KERAS_COMPILE:
+        return None
+    if not any(module.split(".")[0] in KERAS_PACKAGES for module in model.names.imported_modules):
+        return None
+    argument = _argument(call, KERAS_COMPILE_LOSS_POSITION, ("loss",))
+    if argument is None:
+        return None
+    value = argument
+    for _ in range(3):  # a name bound to the loss, itself perhaps bound to a name
+        values = bound_values(model, value, function) if isinstance(
+            value, (cst.Name, cst.Attribute)) and not model.resolve(value) else []
+        if len(values) != 1:
+            break
+        value = values[0]
+    use = _compiled(model, value, function)
+    if use is None:
+        return None
+    return use, func.value, argument
+
+
+def _compiled(model: "ModuleModel", value: cst.BaseExpression,
+              function: cst.FunctionDef | None) -> LossUse | None:
+    if isinstance(value, cst.SimpleString):
+        text = value.evaluated_value
+        spec = KERAS_LOSS_STRINGS.get(text) if isinstance(text, str) else None
+        if spec is None:
+            return None
+        return LossUse(spec, Expects.PROB, None, f'loss="{text}"', from_logits_default=True)
+    if isinstance(value, cst.Call):
+        names = model.resolve(value.func)
+        specs = {KERAS_LOSS_CLASSES.get(name) for name in names}
+        if len(specs) != 1 or None in specs:
+            return None
+        spec = specs.pop()
+        label = model.module.code_for_node(value.func).rpartition(".")[2]
+        return _use(spec, value, None, label, constructed=True)
+    names = model.resolve(value)
+    specs = {LOSS_FUNCTIONS.get(name) for name in names}
+    if len(specs) == 1 and None not in specs:
+        spec = specs.pop()
+        if spec.has_from_logits:  # a function passed by reference runs with its defaults
+            label = model.module.code_for_node(value)
+            return LossUse(spec, spec.expects, None, label, from_logits_default=True)
+    return None
+
+
+def _constructions(model: "ModuleModel", func: cst.BaseExpression,
+                   function: cst.FunctionDef | None) -> list[tuple[LossSpec, cst.Call]] | None:
+    """(spec, construction) of every value `func` may hold, when each is a loss object."""
+    if isinstance(func, cst.Call):
+        built = [func]
+    elif isinstance(func, (cst.Name, cst.Attribute)):
+        built = bound_values(model, func, function)
+    else:
+        return None
+    if not built:
+        return None
+    found = []
+    for value in built:
+        if not isinstance(value, cst.Call):
+            return None
+        specs = {LOSS_CLASSES.get(name) for name in model.resolve(value.func)}
+        if len(specs) != 1 or None in specs:
+            return None
+        found.append((specs.pop(), value))
+    return found
+
+
+def _use(spec: LossSpec, configured: cst.Call, call: cst.Call | None, label: str,
+         constructed: bool) -> LossUse | None:
+    """The LossUse of `call`, with from_logits read from `configured` (None: unreadable).
+
+    `configured` is the loss object's construction (`constructed`) or the function call.
+    """
+    prediction = _argument(call, spec.position, spec.keywords) if call is not None else None
+    if call is not None and prediction is None:
+        return None
+    if not spec.has_from_logits:
+        return LossUse(spec, spec.expects, prediction, label)
+    flag = _from_logits(configured, spec, constructed)
+    if flag is None:
+        return None
+    value, is_default = flag
+    expects = Expects.LOGITS if value else spec.expects
+    if value:
+        label = f"{label}(from_logits=True)"
+    return LossUse(spec, expects, prediction, label, from_logits_default=is_default)
+
+
+def _from_logits(call: cst.Call, spec: LossSpec,
+                 constructed: bool) -> tuple[bool, bool] | None:
+    """(from_logits, left at its default) of a Keras loss call; None when not a literal.
+
+    A construction takes from_logits among its own parameters, a function after y_pred.
+    """
+    position = spec.class_from_logits_position if constructed else spec.from_logits_position
+    positional = 0
+    for arg in call.args:
+        if arg.star:
+            return None  # `**config` may set it
+        if arg.keyword is None:
+            if positional == position:
+                return _literal_bool(arg.value)
+            positional += 1
+        elif arg.keyword.value == "from_logits":
+            return _literal_bool(arg.value)
+    return False, True
+
+
+def _literal_bool(expr: cst.BaseExpression) -> tuple[bool, bool] | None:
+    if isinstance(expr, cst.Name) and expr.value in ("True", "False"):
+        return expr.value == "True", False
+    return None
+
+
+def _argument(call: cst.Call, position: int,
+              keywords: tuple[str, ...]) -> cst.BaseExpression | None:
+    index = 0
+    for arg in call.args:
+        if arg.star:
+            return None
+        if arg.keyword is not None:
+            if arg.keyword.value in keywords:
+                return arg.value
+            continue
+        if index == position:
+            return arg.value
+        index += 1
+    return None
+
+
+def edits_layer_stacks(model: "ModuleModel") -> bool:
+    """True when some statement of the file appends a layer to a built model.
+
+    Value facts read a stack's last layer from its constructor; `model.add(Activation(...))`
+    later makes that reading wrong, so raw-score verdicts on models are not trusted here.
+    """
+    memo = model.memo.setdefault("losses", {})
+    if "edits" not in memo:
+        memo["edits"] = _edits_in(model, model.module.body, 0)
+    return memo["edits"]
+
+
+def _edits_in(model: "ModuleModel", body, depth: int) -> bool:
+    if depth > 20:  # common practice: real code nests far less; deeper means "unknown"
+        return True
+    for statement in body:
+        if isinstance(statement, cst.SimpleStatementLine):
+            for small in statement.body:
+                if isinstance(small, cst.Expr) and _is_stack_edit(model, small.value):
+                    return True
+        elif isinstance(statement, cst.BaseCompoundStatement):
+            for block in _blocks(statement):
+                if isinstance(block, cst.IndentedBlock) and _edits_in(model, block.body,
+                                                                      depth + 1):
+                    return True
+    return False
+
+
+def _blocks(statement: cst.BaseCompoundStatement) -> list[cst.BaseSuite]:
+    blocks = [statement.body]
+    if isinstance(statement, (cst.Try, cst.TryStar)):
+        blocks += [handler.body for handler in statement.handlers]
+        blocks += [part.body for part in (statement.orelse, statement.finalbody) if part]
+    elif isinstance(statement, (cst.For, cst.While)) and statement.orelse is not None:
+        blocks.append(statement.orelse.body)
+    elif isinstance(statement, cst.If):
+        orelse = statement.orelse
+        while orelse is not None:
+            blocks.append(orelse.body)
+            orelse = orelse.orelse if isinstance(orelse, cst.If) else None
+    elif isinstance(statement, cst.Match):
+        blocks += [case.body for case in statement.cases]
+    return blocks
+
+
+def _is_stack_edit(model: "ModuleModel", expr: cst.BaseExpression) -> bool:
+    if not isinstance(expr, cst.Call) or not isinstance(expr.func, cst.Attribute):
+        return False
+    if expr.func.attr.value not in STACK_EDIT_METHODS:
+        return False
+    for arg in expr.args:
+        value = arg.value
+        if isinstance(value, cst.Call) and any(name.startswith(LAYER_PREFIXES)
+                                               for name in model.resolve(value.func)):
+            return True
+    return False
+
+
+# -- consequences ------------------------------------------------------------------------------
+def double_softmax_ceiling(classes: int) -> float:
+    """Largest probability softmax can give to inputs that all lie in [0, 1].
+
+    The spread of the inputs is at most 1, so the top class gets at most
+    e / (e + (C - 1)) (softmax definition; checked with numpy in the reference tests).
+    """
+    return math.e / (math.e + classes - 1)
+
+
+def double_softmax_floor(classes: int) -> float:
+    """The smallest cross-entropy a second softmax allows: -log of the ceiling."""
+    return -math.log(double_softmax_ceiling(classes))
+
+
+def double_sigmoid_range() -> tuple[float, float]:
+    """sigmoid of a probability lies in [sigmoid(0), sigmoid(1)] = [0.5, 0.731]."""
+    return 0.5, 1.0 / (1.0 + math.exp(-1.0))
+
+
+def keras_clip_floor_loss() -> float:
+    """-log(eps): the loss of a clipped prediction on the wrong side, with zero gradient."""
+    return -math.log(KERAS_EPSILON)
+
+
+# -- how many classes a probability covers -----------------------------------------------------
+def class_count(model: "ModuleModel", fact: Fact, function: cst.FunctionDef | None) -> int | None:
+    """The number of classes of a softmax output, when its layer's width is visible."""
+    origin = fact.origin
+    if not isinstance(origin, cst.Call):
+        return None
+    owner = _owner_of(model, origin, function)
+    width = _layer_width(model, origin, owner)
+    if width is not None:
+        return width
+    scores = _softmax_input(model, origin)
+    for _ in range(4):  # scores -> a name -> the layer call that made them
+        if scores is None:
+            return None
+        if isinstance(scores, cst.Name):
+            values = reaching_values(model, scores, owner)
+            scores = values[0] if values and len(values) == 1 else None
+            continue
+        if isinstance(scores, cst.Call):
+            layers = [scores.func] if isinstance(scores.func, cst.Call) else \
+                bound_values(model, scores.func, owner)
+            widths = {_layer_width(model, layer, owner) for layer in layers}
+            if len(widths) == 1:
+                return widths.pop()
+        return None
+    return None
+
+
+def _softmax_input(model: "ModuleModel", call: cst.Call) -> cst.BaseExpression | None:
+    if model.resolve(call.func):
+        return _argument(call, 0, ("input", "x", "logits"))
+    if isinstance(call.func, cst.Attribute):
+        return call.func.value  # `scores.softmax(-1)`
+    return None
+
+
+def _layer_width(model: "ModuleModel", layer: cst.BaseExpression,
+                 function: cst.FunctionDef | None) -> int | None:
+    if not isinstance(layer, cst.Call):
+        return None
+    names = model.resolve(layer.func)
+    places = {CLASS_COUNT_ARGUMENTS.get(name) for name in names}
+    if len(places) != 1 or None in places:
+        return None
+    position, keyword = places.pop()
+    width = _argument(layer, position, (keyword,))
+    if width is None:
+        return None
+    return _count(model, width, function)
+
+
+def _count(model: "ModuleModel", expr: cst.BaseExpression,
+           function: cst.FunctionDef | None) -> int | None:
+    value = constant_value(model, expr, function)
+    if value is None and function is not None:
+        value = constant_value(model, expr, None)
+    if value is None and isinstance(expr, cst.Call) and isinstance(expr.func, cst.Name) \
+            and expr.func.value == "len" and len(expr.args) == 1:
+        listed = expr.args[0].value
+        for scope_function in (function, None):
+            if not isinstance(listed, cst.Name):
+                break
+            values = reaching_values(model, listed, scope_function)
+            if values and len(values) == 1 and isinstance(values[0], (cst.Tuple, cst.List)):
+                return len(values[0].elements)
+    if value is None or value != int(value) or value < 2:
+        return None
+    return int(value)
+
+
+def _owner_of(model: "ModuleModel", node: cst.CSTNode,
+              function: cst.FunctionDef | None) -> cst.FunctionDef | None:
+    """The function whose body returns or binds `node` directly (else `function`)."""
+    candidates = [function, *model.functions.values(),
+                  *(method for info in model.classes.values() for method in info.methods.values())]
+    for candidate in candidates:
+        scope = model.scope_of(candidate)
+        if scope.node is not candidate and candidate is not None:
+            continue
+        if any(value is node for value in scope.returns):
+            return candidate
+        for bindings in scope.bindings.values():
+            if any(binding.value is node for binding in bindings):
+                return candidate
+    return function
