@@ -158,7 +158,8 @@ _EVIDENCE = (
     # Lightning Trainer(precision=16 / "16-mixed" / "bf16-mixed") (Lightning docs)
     (re.compile(r"""\bprecision\s*=\s*(?:16\b|["']16(?:-mixed|-true)?["'])"""), "float16", None),
     (re.compile(r"""\bprecision\s*=\s*["']bf16(?:-mixed|-true)?["']"""), "bfloat16", None),
-    (re.compile(r"\bautocast\b[^\n]*"), "autocast", None),
+    # torch.autocast(...), torch.cuda.amp.autocast(...), torch.cpu.amp.autocast(...)
+    (re.compile(r"\b([\w.]*autocast)\s*\(([^)]*)\)"), "autocast", None),
 )
 
 #: modules whose `float16`/`bfloat16` attribute is a dtype
@@ -210,7 +211,7 @@ def _evidence(model: "ModuleModel", text: str) -> set[str]:
             if needs == "dtype" and not _names_dtype_module(model, match.group(1)):
                 continue
             if name == "autocast":
-                name_found = _autocast_format(match.group(0))
+                name_found = _autocast_format(match.group(1), match.group(2))
                 if name_found:
                     found.add(name_found)
                 continue
@@ -220,16 +221,16 @@ def _evidence(model: "ModuleModel", text: str) -> set[str]:
     return found
 
 
-def _autocast_format(call_text: str) -> str | None:
+def _autocast_format(function: str, arguments: str) -> str | None:
     """CUDA autocast defaults to float16, CPU autocast to bfloat16 (torch.amp docs)."""
-    if "bfloat16" in call_text or "bf16" in call_text:
-        return "bfloat16"
-    if "float16" in call_text or "half" in call_text:
-        return "float16"
-    if "cpu" in call_text:
-        return "bfloat16"
-    if "enabled=False" in call_text.replace(" ", ""):
+    if "enabled=False" in arguments.replace(" ", ""):
         return None
+    if "bfloat16" in arguments or "bf16" in arguments:
+        return "bfloat16"
+    if "float16" in arguments or "half" in arguments:
+        return "float16"
+    if "cpu" in arguments or ".cpu." in function:
+        return "bfloat16"
     return "float16"
 
 
