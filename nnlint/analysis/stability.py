@@ -10,7 +10,8 @@ from typing import TYPE_CHECKING
 import libcst as cst
 
 from nnlint.analysis.api import numerics as api
-from nnlint.analysis.values import Kind, fact_of, positional_argument, single_value
+from nnlint.analysis.precision import FloatLimits, is_autocast_only, limits, precision_of
+from nnlint.analysis.values import Fact, Kind, fact_of, positional_argument, single_value
 
 if TYPE_CHECKING:
     from nnlint.analysis.model import ModuleModel, Scope
@@ -25,6 +26,21 @@ def enclosing_statement(context: "WalkContext") -> cst.CSTNode | None:
         if isinstance(node, _STATEMENTS):
             return node
     return None
+
+
+def active_limits(model: "ModuleModel", function: cst.FunctionDef | None,
+                  fact: Fact | None = None, float32_under_autocast: bool = False
+                  ) -> FloatLimits:
+    """Limits of the format a value is computed in.
+
+    Inside autocast-only files, values made by ops autocast runs in float32 (softmax, exp,
+    sums) are float32; `fact` names the producer, `float32_under_autocast` says so directly.
+    """
+    if float32_under_autocast or (fact is not None
+                                  and fact.producer in api.AUTOCAST_FLOAT32_PRODUCERS):
+        if is_autocast_only(model):
+            return limits("float32")
+    return limits(precision_of(model, function))
 
 
 def log_argument(model: "ModuleModel", call: cst.Call) -> cst.BaseExpression | None:

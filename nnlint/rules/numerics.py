@@ -4,9 +4,9 @@ from __future__ import annotations
 import libcst as cst
 
 from nnlint.analysis.api import numerics as api
-from nnlint.analysis.precision import FloatLimits, limits, precision_of
-from nnlint.analysis.stability import (enclosing_statement, is_masked, log_argument,
-                                       may_be_large)
+from nnlint.analysis.precision import FloatLimits, limits
+from nnlint.analysis.stability import (active_limits, enclosing_statement, is_masked,
+                                       log_argument, may_be_large)
 from nnlint.analysis.values import (Fact, constant_value, exp_argument, fact_of,
                                     keyword_argument, positional_argument,
                                     summed_exp_argument, summed_operand)
@@ -81,7 +81,7 @@ class LogOfMaybeZero(Rule):
             return
         if is_masked(self.model, node, self.context):
             return
-        bounds = limits(precision_of(self.model, self.context.function))
+        bounds = active_limits(self.model, self.context.function, fact)
         when, fix = _zero_cause(fact, bounds)
         self.report(node, what=_clip(fact.description or "a value", 40), when=when, fix=fix)
 
@@ -118,16 +118,16 @@ class EpsilonVanishes(Rule):
         argument = log_argument(self.model, node)
         if argument is not None:
             self._check_sum(argument)
-            self._check_one_minus(argument)
+            self._check_one_minus(argument, None)
             return
         bounds = self._clamp_bounds(node)
         if bounds is None:
             return
-        lower, upper = bounds
+        subject, lower, upper = bounds
         if lower is not None:
-            self._check_floor(lower)
+            self._check_floor(lower, subject)
         if upper is not None:
-            self._check_one_minus(upper)
+            self._check_one_minus(upper, subject)
 
     def visit_BinaryOperation(self, node: cst.BinaryOperation) -> None:
         if isinstance(node.operator, cst.Divide):
@@ -142,21 +142,28 @@ class EpsilonVanishes(Rule):
             name = next(iter(names))
             if name in api.CLAMP_FUNCTIONS:
                 lower_names, upper_names = api.CLAMP_FUNCTIONS[name]
-                return (keyword_argument(node, lower_names) or positional_argument(node, 1),
+                return (positional_argument(node, 0),
+                        keyword_argument(node, lower_names) or positional_argument(node, 1),
                         keyword_argument(node, upper_names) or positional_argument(node, 2))
             if name in api.MAXIMUM_FUNCTIONS:
-                return positional_argument(node, 1), None
+                return positional_argument(node, 0), positional_argument(node, 1), None
             return None
         if isinstance(func, cst.Attribute) and func.attr.value in api.CLAMP_METHODS:
             lower_names, upper_names = api.CLAMP_METHODS[func.attr.value]
             upper = None
             if upper_names:
                 upper = keyword_argument(node, upper_names) or positional_argument(node, 1)
-            return keyword_argument(node, lower_names) or positional_argument(node, 0), upper
+            lower = keyword_argument(node, lower_names) or positional_argument(node, 0)
+            return func.value, lower, upper
         return None
 
-    def _limits(self) -> FloatLimits:
-        return limits(precision_of(self.model, self.context.function))
+    def _limits(self, subject: cst.BaseExpression | None) -> FloatLimits:
+        """The format `subject` is computed in (float32 for softmax inside autocast)."""
+        function = self.context.function
+        fact = None
+        if subject is not None:
+            fact = fact_of(self.model, subject, function, enclosing_statement(self.context))
+        return active_limits(self.model, function, fact)
 
     def _constant(self, expr: cst.BaseExpression) -> float | None:
         return constant_value(self.model, expr, self.context.function,
@@ -165,28 +172,33 @@ class EpsilonVanishes(Rule):
     def _check_sum(self, expr: cst.BaseExpression) -> None:
         if not (isinstance(expr, cst.BinaryOperation) and isinstance(expr.operator, cst.Add)):
             return
-        for part in (expr.right, expr.left):
-            if self._check_floor(part):
+        for part, subject in ((expr.right, expr.left), (expr.left, expr.right)):
+            if self._check_floor(part, subject):
                 return
 
-    def _check_floor(self, expr: cst.BaseExpression) -> bool:
+    def _check_floor(self, expr: cst.BaseExpression, subject: cst.BaseExpression | None) -> bool:
         value = self._constant(expr)
-        bounds = self._limits()
-        if value is None or value <= 0 or not bounds.rounds_to_zero(value):
+        if value is None or value <= 0:
+            return False
+        bounds = self._limits(subject)
+        if not bounds.rounds_to_zero(value):
             return False
         self.report(expr, eps=self._spelling(expr, value), effect="rounds to 0",
                     dtype=bounds.name, limit=f"smallest subnormal {bounds.smallest_subnormal:.1e}",
                     suggestion=f">= {bounds.smallest_normal:.1e}")
         return True
 
-    def _check_one_minus(self, expr: cst.BaseExpression) -> None:
+    def _check_one_minus(self, expr: cst.BaseExpression,
+                         subject: cst.BaseExpression | None) -> None:
         if not (isinstance(expr, cst.BinaryOperation) and isinstance(expr.operator, cst.Subtract)):
             return
         if self._constant(expr.left) != 1.0:
             return
         value = self._constant(expr.right)
-        bounds = self._limits()
-        if value is None or value <= 0 or not bounds.one_minus_is_one(value):
+        if value is None or value <= 0:
+            return
+        bounds = self._limits(subject)
+        if not bounds.one_minus_is_one(value):
             return
         self.report(expr.right, eps=self._spelling(expr.right, value),
                     effect="makes 1 - eps == 1", dtype=bounds.name,
@@ -207,7 +219,7 @@ class _ExpOverflow(Rule):
         return may_be_large(self.model, argument, scope, enclosing_statement(self.context))
 
     def _overflow_fields(self) -> dict[str, str]:
-        bounds = limits(precision_of(self.model, self.context.function))
+        bounds = active_limits(self.model, self.context.function, float32_under_autocast=True)
         return {"limit": f"{bounds.log_max:.1f}", "dtype": bounds.name}
 
 
