@@ -158,7 +158,8 @@ _EVIDENCE = (
     # Lightning Trainer(precision=16 / "16-mixed" / "bf16-mixed") (Lightning docs)
     (re.compile(r"""\bprecision\s*=\s*(?:16\b|["']16(?:-mixed|-true)?["'])"""), "float16", None),
     (re.compile(r"""\bprecision\s*=\s*["']bf16(?:-mixed|-true)?["']"""), "bfloat16", None),
-    (re.compile(r"\bautocast\b[^\n]*"), "autocast", None),
+    # torch.autocast(...), torch.cuda.amp.autocast(...), torch.cpu.amp.autocast(...)
+    (re.compile(r"\b([\w.]*autocast)\s*\(([^)]*)\)"), "autocast", None),
 )
 
 #: modules whose `float16`/`bfloat16` attribute is a dtype
@@ -179,30 +180,53 @@ def precision_of(model: "ModuleModel", function: "cst.FunctionDef | None" = None
     settings = model.settings
     if settings is not None and settings.precision:
         return settings.precision
+    return _file_precision(model)[0]
+
+
+def is_autocast_only(model: "ModuleModel") -> bool:
+    """True when the half format of the file comes only from CUDA autocast regions.
+
+    CUDA autocast runs exp, log, softmax, log_softmax and sum in float32 even inside the
+    region (PyTorch "Automatic Mixed Precision" docs, CUDA ops that autocast to float32),
+    so rules judging those ops use float32 there. CPU autocast keeps softmax and exp in
+    bfloat16 (checked against torch 2.13 CPU in tests/test_numerics_references.py).
+    """
+    settings = model.settings
+    if settings is not None and settings.precision:
+        return False
+    return _file_precision(model)[1]
+
+
+def _file_precision(model: "ModuleModel") -> tuple[str, bool]:
     memo = model.memo.setdefault("precision", {})
     if "file" not in memo:
-        memo["file"] = _file_precision(model)
+        memo["file"] = _compute_file_precision(model)
     return memo["file"]
 
 
-def _file_precision(model: "ModuleModel") -> str:
+def _compute_file_precision(model: "ModuleModel") -> tuple[str, bool]:
     text = model.module.code
-    found: set[str] = set()
+    found: dict[str, set[str]] = {}
     if _EVIDENCE_HINT.search(text):
         found = _evidence(model, text)
     for name in ("float16", "bfloat16"):
         if name in found:
-            return name
+            return name, found[name] == {"autocast-cuda"}
+    return _default_precision(model, text), False
+
+
+def _default_precision(model: "ModuleModel", text: str) -> str:
     modules = model.names.imported_modules
     if modules and not any(module.split(".")[0] in _FLOAT32_FRAMEWORKS for module in modules):
-        if "float32" not in found and any(module.split(".")[0] in ("numpy", "scipy")
-                                          for module in modules):
+        if "float32" not in text and any(module.split(".")[0] in ("numpy", "scipy")
+                                         for module in modules):
             return "float64"
     return "float32"
 
 
-def _evidence(model: "ModuleModel", text: str) -> set[str]:
-    found: set[str] = set()
+def _evidence(model: "ModuleModel", text: str) -> dict[str, set[str]]:
+    """format -> kinds of evidence for it ("autocast-cuda", "autocast-cpu", "explicit")."""
+    found: dict[str, set[str]] = {}
     for pattern, name, needs in _EVIDENCE:
         for match in pattern.finditer(text):
             if _in_comment(text, match.start()):
@@ -210,27 +234,30 @@ def _evidence(model: "ModuleModel", text: str) -> set[str]:
             if needs == "dtype" and not _names_dtype_module(model, match.group(1)):
                 continue
             if name == "autocast":
-                name_found = _autocast_format(match.group(0))
+                name_found = _autocast_format(match.group(1), match.group(2))
                 if name_found:
-                    found.add(name_found)
+                    device = "cpu" if _is_cpu_autocast(match.group(1), match.group(2)) else "cuda"
+                    found.setdefault(name_found, set()).add(f"autocast-{device}")
                 continue
-            found.add(name)
-    if re.search(r"\bfloat32\b", text):
-        found.add("float32")
+            found.setdefault(name, set()).add("explicit")
     return found
 
 
-def _autocast_format(call_text: str) -> str | None:
+def _autocast_format(function: str, arguments: str) -> str | None:
     """CUDA autocast defaults to float16, CPU autocast to bfloat16 (torch.amp docs)."""
-    if "bfloat16" in call_text or "bf16" in call_text:
-        return "bfloat16"
-    if "float16" in call_text or "half" in call_text:
-        return "float16"
-    if "cpu" in call_text:
-        return "bfloat16"
-    if "enabled=False" in call_text.replace(" ", ""):
+    if "enabled=False" in arguments.replace(" ", ""):
         return None
+    if "bfloat16" in arguments or "bf16" in arguments:
+        return "bfloat16"
+    if "float16" in arguments or "half" in arguments:
+        return "float16"
+    if _is_cpu_autocast(function, arguments):
+        return "bfloat16"
     return "float16"
+
+
+def _is_cpu_autocast(function: str, arguments: str) -> bool:
+    return "cpu" in arguments or ".cpu." in function
 
 
 def _names_dtype_module(model: "ModuleModel", receiver: str) -> bool:

@@ -159,7 +159,7 @@ def _final_name(expr: cst.BaseExpression) -> str | None:
     return None
 
 
-def _positional(call: cst.Call, position: int) -> cst.BaseExpression | None:
+def positional_argument(call: cst.Call, position: int) -> cst.BaseExpression | None:
     index = 0
     for arg in call.args:
         if arg.keyword is not None or arg.star:
@@ -170,7 +170,7 @@ def _positional(call: cst.Call, position: int) -> cst.BaseExpression | None:
     return None
 
 
-def _keyword(call: cst.Call, names: tuple[str, ...]) -> cst.BaseExpression | None:
+def keyword_argument(call: cst.Call, names: tuple[str, ...]) -> cst.BaseExpression | None:
     for arg in call.args:
         if arg.keyword is not None and arg.keyword.value in names:
             return arg.value
@@ -349,6 +349,13 @@ class _Evaluator:
         found = self._class_attribute(info, expr.attr.value, set())
         return found
 
+    def _is_receiver(self, expr: cst.Attribute, scope: "Scope") -> bool:
+        """`expr` is `self.<name>` inside a method (the receiver is its first parameter)."""
+        function = scope.node
+        return (isinstance(expr.value, cst.Name) and isinstance(function, cst.FunctionDef)
+                and self._owner_class(function) is not None
+                and expr.value.value == _receiver_name(function))
+
     def _owner_class(self, function: cst.FunctionDef) -> "ClassInfo | None":
         return self.model.class_of_method(function)
 
@@ -516,10 +523,10 @@ class _Evaluator:
                          for name in sorted(names)])
         final = _final_name(func)
         if final in api.SPARSE_PROB_NAMES:
-            return Fact(Kind.PROB, True, f"{final} output (a sparse probability map)", "sparse")
+            return Fact(Kind.PROB, True, f"{final} output", "sparse")
         if isinstance(func, cst.Attribute):
             method = func.attr.value
-            if self._self_attribute(func, scope) is not None or _is_receiver(func, scope):
+            if self._self_attribute(func, scope) is not None or self._is_receiver(func, scope):
                 return self.call_result(func, scope, statement)
             return self._method_fact(method, func.value, call, scope, statement)
         return self.call_result(func, scope, statement)
@@ -541,7 +548,7 @@ class _Evaluator:
             return Fact(Kind.NONNEG, description=f"{method.rstrip('_')} output")
         if method in api.CLAMP_METHODS:
             lower_names, _ = api.CLAMP_METHODS[method]
-            lower = _keyword(call, lower_names) or _positional(call, 0)
+            lower = keyword_argument(call, lower_names) or positional_argument(call, 0)
             return self._floor_fact(receiver, lower, scope, statement)
         if method in api.PASS_THROUGH_METHODS:
             return self.fact(receiver, scope, statement)
@@ -567,29 +574,29 @@ class _Evaluator:
             return Fact(Kind.NONNEG, description=f"{short} output")
         if name in api.LOGITS_FUNCTIONS:
             return Fact(Kind.LOGITS, description=f"{short} output", producer="linear layer")
-        subject = _positional(call, 0)
+        subject = positional_argument(call, 0)
         if name in api.CLAMP_FUNCTIONS:
             lower_names, _ = api.CLAMP_FUNCTIONS[name]
-            lower = _keyword(call, lower_names) or _positional(call, 1)
+            lower = keyword_argument(call, lower_names) or positional_argument(call, 1)
             if subject is None:
                 return UNKNOWN
             return self._floor_fact(subject, lower, scope, statement)
         if name in api.MAXIMUM_FUNCTIONS:
-            other = _positional(call, 1)
+            other = positional_argument(call, 1)
             if subject is None or other is None:
                 return UNKNOWN
             if self.constant(subject, scope, statement) is not None:
                 subject, other = other, subject
             return self._floor_fact(subject, other, scope, statement)
         if name in api.WHERE_FUNCTIONS:
-            chosen = [_positional(call, 1), _positional(call, 2)]
+            chosen = [positional_argument(call, 1), positional_argument(call, 2)]
             if None in chosen:
                 return UNKNOWN
             return join([self.fact(expr, scope, statement) for expr in chosen])
         if name in api.PASS_THROUGH_FUNCTIONS:
             return self.fact(subject, scope, statement) if subject is not None else UNKNOWN
         if short in api.SPARSE_PROB_NAMES:
-            return Fact(Kind.PROB, True, f"{short} output (a sparse probability map)", "sparse")
+            return Fact(Kind.PROB, True, f"{short} output", "sparse")
         return self._exported(name, "r")
 
     def _floor_fact(self, subject: cst.BaseExpression, lower: cst.BaseExpression | None,
@@ -721,7 +728,7 @@ class _Evaluator:
                                                          callee)
                                     for binding, method in bindings]), self.model, callee)
             function = scope.node
-            if isinstance(function, cst.FunctionDef) and _is_receiver(callee, scope):
+            if isinstance(function, cst.FunctionDef) and self._is_receiver(callee, scope):
                 info = self._owner_class(function)
                 method = info.methods.get(callee.attr.value) if info is not None else None
                 if method is not None:
@@ -790,20 +797,21 @@ class _Evaluator:
             producer = api.ZERO_PRODUCING_LAYERS[name]
             return Fact(Kind.NONNEG, True, f"{producer} output", producer, origin=construction)
         if name == api.KERAS_ACTIVATION_LAYER:
-            return self._activation_fact(_positional(construction, 0)
-                                         or _keyword(construction, ("activation",)),
+            return self._activation_fact(positional_argument(construction, 0)
+                                         or keyword_argument(construction, ("activation",)),
                                          construction, scope)
         if name in api.LOGITS_LAYERS:
-            activation = _keyword(construction, ("activation",))
+            activation = keyword_argument(construction, ("activation",))
             if activation is None and name.startswith(api.KERAS_ACTIVATION_LAYERS_PREFIX):
-                activation = _positional(construction, 1)
+                activation = positional_argument(construction, 1)
             if activation is None:
                 return Fact(Kind.LOGITS, description="raw scores", producer="linear layer")
             return self._activation_fact(activation, construction, scope)
         if name in api.SEQUENTIAL_CLASSES:
             return self._stack_call(construction, scope, statement)
         if name in api.KERAS_MODEL_CLASSES:
-            outputs = _keyword(construction, ("outputs",)) or _positional(construction, 1)
+            outputs = (keyword_argument(construction, ("outputs",))
+                       or positional_argument(construction, 1))
             if outputs is None:
                 return UNKNOWN
             return self.fact(outputs, scope, statement)
@@ -950,12 +958,6 @@ def _receiver_name(function: cst.FunctionDef) -> str | None:
     return params[0].name.value if params else None
 
 
-def _is_receiver(expr: cst.Attribute, scope: "Scope") -> bool:
-    function = scope.node
-    return (isinstance(expr.value, cst.Name) and isinstance(function, cst.FunctionDef)
-            and expr.value.value == _receiver_name(function))
-
-
 def _binding_target(binding: "Binding") -> cst.BaseExpression | None:
     statement = binding.statement
     if isinstance(statement, (cst.SimpleStatementLine, cst.SimpleStatementSuite)):
@@ -1000,14 +1002,14 @@ def exp_argument(model: "ModuleModel", expr: cst.BaseExpression, scope: "Scope",
         names = model.resolve(func)
         if names:
             if names <= api.EXP_FUNCTIONS:
-                return _positional(expr, 0)
+                return positional_argument(expr, 0)
             return None
         if isinstance(func, cst.Attribute) and func.attr.value == "exp" and not expr.args:
             return func.value
         return None
     if isinstance(expr, cst.Name):
         evaluator = evaluator or _evaluator(model)
-        single = _single_value(evaluator, expr, scope, statement)
+        single = single_value(model, expr, scope, statement)
         if single is None:
             return None
         return exp_argument(model, *single, evaluator)
@@ -1023,7 +1025,7 @@ def summed_exp_argument(model: "ModuleModel", expr: cst.BaseExpression, scope: "
         return exp_argument(model, summed, scope, statement, evaluator)
     if isinstance(expr, cst.Name):
         evaluator = evaluator or _evaluator(model)
-        single = _single_value(evaluator, expr, scope, statement)
+        single = single_value(model, expr, scope, statement)
         inner = summed_operand(model, single[0]) if single is not None else None
         if inner is None:
             return None
@@ -1038,16 +1040,16 @@ def summed_operand(model: "ModuleModel", expr: cst.BaseExpression) -> cst.BaseEx
     func = expr.func
     names = model.resolve(func)
     if names:
-        return _positional(expr, 0) if names <= api.SUM_FUNCTIONS else None
+        return positional_argument(expr, 0) if names <= api.SUM_FUNCTIONS else None
     if isinstance(func, cst.Attribute) and func.attr.value in api.SUM_METHODS:
         return func.value
     return None
 
 
-def _single_value(evaluator: "_Evaluator", name: cst.Name, scope: "Scope",
-                  statement: cst.CSTNode | None):
+def single_value(model: "ModuleModel", name: cst.Name, scope: "Scope",
+                 statement: cst.CSTNode | None):
     """(value, its scope, its statement) when exactly one plain binding of `name` reaches."""
-    found = evaluator.reaching(name.value, scope, statement)
+    found = _evaluator(model).reaching(name.value, scope, statement)
     if found is None or len(found[1]) != 1:
         return None
     owner, (binding,) = found

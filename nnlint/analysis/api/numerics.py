@@ -166,3 +166,7 @@ NONNEG_METHODS = frozenset({"abs", "square", "sqrt", "abs_"})
 
 #: functions that, wrapping a log, show the author handles -inf/NaN (np.errstate, nan_to_num)
 ERRSTATE_CONTEXTS = frozenset({"numpy.errstate", "jax.numpy.errstate"})
+
+#: producers CUDA autocast runs in float32 even inside a float16/bfloat16 region
+#: (PyTorch "Automatic Mixed Precision" docs: CUDA ops that can autocast to float32)
+AUTOCAST_FLOAT32_PRODUCERS = frozenset({"softmax", "log_softmax", "exp", "1 - softmax"})
