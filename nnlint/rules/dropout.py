@@ -153,7 +153,7 @@ class DropoutRescaledTwice(Rule):
         if found is None:
             return
         scaling = self._framework_scaling(found, node)
-        if scaling is not None and not self._on_eval_path(node):
+        if scaling is not None:
             self._inverted.append(scaling)
 
     def visit_BinaryOperation(self, node: cst.BinaryOperation) -> None:
@@ -205,14 +205,13 @@ class DropoutRescaledTwice(Rule):
                                                                      self.context.function):
             scaling = self._scaling(key, node)
             self._inverted_nodes[id(node)] = scaling
-            if not self._on_eval_path(node):
-                self._inverted.append(scaling)
+            self._inverted.append(scaling)
 
     def _multiplication(self, node: cst.CSTNode, left: cst.BaseExpression,
                         right: cst.BaseExpression) -> None:
         for keep, other in ((right, left), (left, right)):
             key = keep_key(self.model, keep)
-            if key is None or mentions_mask(self.model, other):
+            if key is None:
                 continue
             if self._on_eval_path(node):
                 scaling = self._scaling(key, node)
