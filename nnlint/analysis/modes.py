@@ -945,6 +945,8 @@ class _Interpreter:
                 continue
             modes = self._modes(key, state)
             if modes is None:
+                if CALLER not in effect.exit:
+                    state[key] = effect.exit  # the callee switched it: a model after all
                 continue
             self._apply_effect(call, effect, key, modes, state, remote, written)
 

@@ -41,6 +41,12 @@ class ModeSwitchNotCalled(Rule):
         self.report(target, expression=expression, consequence=consequence)
 
 
+def _shortened(text: str, limit: int = 30) -> str:
+    """Keep messages on one line of at most 100 characters (STYLE.md)."""
+    text = " ".join(text.split())
+    return text if len(text) <= limit else text[:limit - 3] + "..."
+
+
 def _severity_for(layers: str) -> Severity | None:
     """Known dropout or batch norm make the wrong mode certain to change the numbers."""
     return Severity.ERROR if layers else None
@@ -187,8 +193,7 @@ class EvalTracksGradients(Rule):
 
     def visit_Call(self, node: cst.Call) -> None:
         for found in ModeAnalysis.of(self.model).findings_at(node, self.code):
-            data = found.data if len(found.data) <= 30 else found.data[:27] + "..."
-            self.report(node, model=found.model, data=data)
+            self.report(node, model=found.model, data=_shortened(found.data))
 
 
 @register
@@ -197,8 +202,7 @@ class BackwardUnderNoGrad(Rule):
     name = "backward-under-no-grad"
     severity = Severity.ERROR
     summary = "a backward pass starts from a tensor computed inside a no-grad block"
-    message = ("`{expression}` of `{tensor}`, made under `{context}` with no graph;"
-               " compute it outside")
+    message = "{operation} `{tensor}` made under `{context}` has no graph; compute it outside"
     rationale = (
         "Inside `torch.no_grad()`/`torch.inference_mode()` (block or decorator) and under "
         "`set_grad_enabled(False)`, operations record no graph, so a loss computed there has "
@@ -243,5 +247,8 @@ class BackwardUnderNoGrad(Rule):
         block, context_name = region
         if not computed_inside(self.model, block, tensor, self.context.function):
             return
-        self.report(node, expression=self.model.module.code_for_node(func),
-                    tensor=self.model.module.code_for_node(tensor), context=context_name)
+        operation = ("backward of" if isinstance(func, cst.Attribute)
+                     and func.attr.value == "backward" else "autograd.grad of")
+        self.report(node, operation=operation,
+                    tensor=_shortened(self.model.module.code_for_node(tensor), 24),
+                    context=context_name)
