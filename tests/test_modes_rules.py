@@ -76,7 +76,7 @@ def test_a_helper_of_another_module_is_judged_at_the_call(tmp_path):
     script = tmp_path / "run.py"
     script.write_text(
         "import torch\nfrom torch import nn\nfrom metrics import accuracy, val_accuracy\n\n"
-        "net = nn.Sequential(nn.Linear(4, 4), nn.Dropout(0.2))\nnet.train()\n"
+        "net = nn.Sequential(nn.Linear(4, 4), nn.Dropout(0.2))\n"
         "accuracy(net, [])\nval_accuracy(net, [])\nnet.eval()\nval_accuracy(net, [])\n")
     from nnlint.engine import check_file
 
@@ -84,7 +84,7 @@ def test_a_helper_of_another_module_is_judged_at_the_call(tmp_path):
     result = check_file(str(script), settings, ProjectIndex(settings))
     helper = check_file(str(tmp_path / "metrics.py"), settings, ProjectIndex(settings))
     # accuracy() is not evaluation code (no loop statement, neutral name): no claim on it;
-    # val_accuracy() is, and the call on line 8 hands it a model in training mode
-    assert [(f.code, f.line, f.column) for f in result.findings] == [("NNL401", 8, 1)]
+    # val_accuracy() is, and the call on line 7 hands it a model in training mode
+    assert [(f.code, f.line, f.column) for f in result.findings] == [("NNL401", 7, 1)]
     assert result.findings[0].message.startswith("evaluation in `val_accuracy` runs `net`")
     assert helper.findings == []  # the helper alone cannot know its callers' mode

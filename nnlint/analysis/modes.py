@@ -8,7 +8,10 @@ summary (what it needs from the caller's mode and what mode it leaves behind). F
 of other modules of the tree contribute the same summary through ModuleSummary facts.
 
 A model's mode is a set of possibilities:
-- TRAIN: constructed (modules start in training mode, PyTorch Module.training) or train()
+- TRAIN: constructed (modules start in training mode, PyTorch Module.training), or
+  switched with train() and then trained
+- TRAIN_REQUESTED: train() was called and no training step followed yet; evaluation code
+  reached in this mode asked for it (batch-norm recalibration, Monte-Carlo dropout)
 - EVAL: eval() was called and no evaluation has used it yet (a deliberate freeze, maybe)
 - EVALUATED: eval() was called and evaluation code ran the model in that mode
 - PRETRAINED: loaded with from_pretrained, which returns eval mode (from memory)
@@ -34,6 +37,7 @@ if TYPE_CHECKING:
 
 TRAIN, EVAL, EVALUATED, PRETRAINED, CALLER, UNKNOWN = (
     "train", "eval", "evaluated", "pretrained", "caller", "unknown")
+TRAIN_REQUESTED = "train-requested"
 Modes = frozenset
 State = dict  # model key -> frozenset of modes
 
@@ -86,6 +90,14 @@ def _is_evaluation_data(expr: cst.BaseExpression) -> bool:
     return written is not None and _has_data_word(written.rsplit(".", 1)[-1])
 
 
+def _is_evaluation_argument(expr: cst.BaseExpression) -> bool:
+    """A model input named as evaluation data: `x_val`, `test_images.to(device)`."""
+    while isinstance(expr, cst.Subscript):
+        expr = expr.value
+    written = model_key(expr)
+    return written is not None and _has_data_word(written.rsplit(".", 1)[-1])
+
+
 def _has_data_word(text: object) -> bool:
     if not isinstance(text, str):
         return False
@@ -111,22 +123,35 @@ def _child_fields(kind: type) -> tuple[str, ...]:
     return names
 
 
-def calls_in(node: cst.CSTNode) -> list[cst.Call]:
+_COMPREHENSIONS = (cst.ListComp, cst.SetComp, cst.GeneratorExp, cst.DictComp)
+
+
+def calls_in(node: cst.CSTNode, evaluation_data: dict | None = None) -> list[cst.Call]:
     """Calls inside an expression or small statement, in evaluation order (post-order).
 
-    Lambdas are skipped: their body runs later, when something calls them.
+    Lambdas are skipped: their body runs later, when something calls them. When
+    `evaluation_data` is given, calls inside a comprehension over evaluation data
+    (`[model(x) for x in val_loader]`) map id(call) -> that iterable there.
     """
     found: list[cst.Call] = []
-    stack: list[tuple[cst.CSTNode, bool]] = [(node, False)]
+    stack: list[tuple[cst.CSTNode, bool, cst.CSTNode | None]] = [(node, False, None)]
     while stack:
-        current, expanded = stack.pop()
+        current, expanded, data = stack.pop()
         if expanded:
             found.append(current)  # type: ignore[arg-type]
+            if data is not None and evaluation_data is not None:
+                evaluation_data[id(current)] = data
             continue
         if isinstance(current, cst.Lambda):
             continue
+        if isinstance(current, _COMPREHENSIONS) and evaluation_data is not None:
+            loop: cst.CompFor | None = current.for_in
+            while loop is not None:
+                if _is_evaluation_data(loop.iter):
+                    data = loop.iter
+                loop = loop.inner_for_in
         if isinstance(current, cst.Call):
-            stack.append((current, True))
+            stack.append((current, True, data))
         children = []
         for name in _child_fields(type(current)):
             value = getattr(current, name)
@@ -134,7 +159,7 @@ def calls_in(node: cst.CSTNode) -> list[cst.Call]:
                 children.append(value)
             elif isinstance(value, (tuple, list)):
                 children.extend(item for item in value if isinstance(item, _CONTENT))
-        stack.extend((child, False) for child in reversed(children))
+        stack.extend((child, False, data) for child in reversed(children))
     return found
 
 
@@ -207,6 +232,9 @@ class _Context:
     #: a loop over evaluation data encloses this statement (its iterable, as written)
     evaluation_loop: str = ""
     after_training: bool = False
+    #: inside a loop of this body (code after an inner training loop there is not "after
+    #: training": GAN samples drawn between epochs are drawn in training mode on purpose)
+    in_loop: bool = False
 
 
 class ModeAnalysis:
@@ -227,6 +255,8 @@ class ModeAnalysis:
         self.summaries: dict[int, FunctionSummary] = {}
         self._in_progress: set[int] = set()
         self._statement_calls: dict[int, list[cst.Call]] = {}
+        #: id(call) -> evaluation iterable of the comprehension around the call
+        self.comprehension_data: dict[int, cst.BaseExpression] = {}
         self._evaluation_functions: dict[int, bool] = {}
         #: function -> for each call of it in the file, whether the call runs under no-grad
         self._call_contexts: dict[int, list[bool]] = {}
@@ -337,7 +367,7 @@ class ModeAnalysis:
         if calls is None:
             calls = []
             for part in _header_parts(statement):
-                calls.extend(calls_in(part))
+                calls.extend(calls_in(part, self.comprehension_data))
             self._statement_calls[id(statement)] = calls
         return calls
 
@@ -669,7 +699,8 @@ class _Interpreter:
                 return None
             state = self._statement(statement, state, replace_context(
                 context, after_training=trained_before))
-            if isinstance(statement, (cst.For, cst.While)) and self._trains_in(statement):
+            if (isinstance(statement, (cst.For, cst.While)) and not context.in_loop
+                    and self._trains_in(statement)):
                 trained_before = True
         return state
 
@@ -722,6 +753,7 @@ class _Interpreter:
                 inner = replace_context(context, evaluation=True)
             for name in _target_names(statement.target):
                 self._forget(name, state)
+        inner = replace_context(inner, in_loop=True)
         head = dict(state)
         loop = _Loop()
         out: State | None = None
@@ -838,7 +870,7 @@ class _Interpreter:
         if method == "train":
             flag = call.args[0].value if call.args else cst.Name("True")
             if isinstance(flag, cst.Name) and flag.value in ("True", "False"):
-                state[key] = frozenset({TRAIN if flag.value == "True" else EVAL})
+                state[key] = frozenset({TRAIN_REQUESTED if flag.value == "True" else EVAL})
                 return
         state[key] = frozenset({UNKNOWN})
 
@@ -846,7 +878,13 @@ class _Interpreter:
         modes = self._modes(key, state)
         if modes is None:
             return
-        evaluation = context.evaluation or (context.after_training and context.no_grad)
+        comprehension = self.analysis.comprehension_data.get(id(call))
+        if comprehension is not None and not self.managed and not context.evaluation_loop:
+            context = replace_context(context, evaluation=True, evaluation_loop=(
+                self.model.module.code_for_node(comprehension)))
+        evaluation = context.evaluation or context.no_grad and (
+            context.after_training or any(_is_evaluation_argument(arg.value)
+                                          for arg in call.args[:1]))
         self.analysis.observations.append(Observation(call, self.name, key, set(modes),
                                                       evaluation))
         if (evaluation and context.evaluation_loop and not context.no_grad
@@ -868,7 +906,11 @@ class _Interpreter:
 
     def _training_step(self, call: cst.Call, state: State) -> None:
         for key, modes in list(state.items()):
-            if key not in self.called or self.layers.get(key) == "":
+            if key not in self.called:
+                continue
+            if TRAIN_REQUESTED in modes:
+                state[key] = modes = (modes - {TRAIN_REQUESTED}) | {TRAIN}
+            if self.layers.get(key) == "":
                 continue
             cause = ("`from_pretrained`" if PRETRAINED in modes
                      else "an earlier evaluation" if EVALUATED in modes else "")
@@ -995,6 +1037,8 @@ class _Interpreter:
                     own.trains = call if remote else effect.trains
         if effect.needs_eval is not None and EVAL in modes:
             modes = (modes - {EVAL}) | {EVALUATED}
+        if effect.trains is not None and TRAIN_REQUESTED in modes:
+            modes = (modes - {TRAIN_REQUESTED}) | {TRAIN}
         exit_modes: set[str] = set()
         for mode in effect.exit:
             exit_modes |= modes if mode == CALLER else {mode}
