@@ -123,6 +123,19 @@ def _child_fields(kind: type) -> tuple[str, ...]:
     return names
 
 
+_CONTENT_TYPES: dict[type, bool] = {}
+
+
+def _is_content(value: object) -> bool:
+    """An expression-level node worth descending into (cached per type: libcst's base
+    classes are ABCs, whose isinstance checks dominate the scan otherwise)."""
+    kind = type(value)
+    known = _CONTENT_TYPES.get(kind)
+    if known is None:
+        known = _CONTENT_TYPES[kind] = isinstance(value, _CONTENT)
+    return known
+
+
 _COMPREHENSIONS = (cst.ListComp, cst.SetComp, cst.GeneratorExp, cst.DictComp)
 
 
@@ -155,10 +168,10 @@ def calls_in(node: cst.CSTNode, evaluation_data: dict | None = None) -> list[cst
         children = []
         for name in _child_fields(type(current)):
             value = getattr(current, name)
-            if isinstance(value, _CONTENT):
+            if isinstance(value, (tuple, list)):
+                children.extend(item for item in value if _is_content(item))
+            elif _is_content(value):
                 children.append(value)
-            elif isinstance(value, (tuple, list)):
-                children.extend(item for item in value if isinstance(item, _CONTENT))
         stack.extend((child, False, data) for child in reversed(children))
     return found
 
@@ -230,7 +243,7 @@ class _Context:
     grad_managed: bool = False
     evaluation: bool = False
     #: a loop over evaluation data encloses this statement (its iterable, as written)
-    evaluation_loop: str = ""
+    evaluation_loop: cst.BaseExpression | None = None
     after_training: bool = False
     #: inside a loop of this body (code after an inner training loop there is not "after
     #: training": GAN samples drawn between epochs are drawn in training mode on purpose)
@@ -741,10 +754,10 @@ class _Interpreter:
               ) -> State | None:
         inner = context
         if isinstance(statement, cst.For) and not self.managed:
-            data = self.model.module.code_for_node(statement.iter)
+            data = statement.iter
             # a loop that computes gradients (test-time adaptation, adversarial inputs) is
             # not an evaluation pass that merely forgot no_grad
-            loop_data = "" if self._trains_in(statement) else data
+            loop_data = None if self._trains_in(statement) else data
             if _is_evaluation_data(statement.iter):
                 inner = replace_context(context, evaluation=True, evaluation_loop=loop_data)
             elif context.evaluation:
@@ -879,17 +892,17 @@ class _Interpreter:
         if modes is None:
             return
         comprehension = self.analysis.comprehension_data.get(id(call))
-        if comprehension is not None and not self.managed and not context.evaluation_loop:
-            context = replace_context(context, evaluation=True, evaluation_loop=(
-                self.model.module.code_for_node(comprehension)))
+        if comprehension is not None and not self.managed and context.evaluation_loop is None:
+            context = replace_context(context, evaluation=True, evaluation_loop=comprehension)
         evaluation = context.evaluation or context.no_grad and (
             context.after_training or any(_is_evaluation_argument(arg.value)
                                           for arg in call.args[:1]))
         self.analysis.observations.append(Observation(call, self.name, key, set(modes),
                                                       evaluation))
-        if (evaluation and context.evaluation_loop and not context.no_grad
+        if (evaluation and context.evaluation_loop is not None and not context.no_grad
                 and not context.grad_managed):
-            self._graph_finding(key, Finding("NNL404", call, key, data=context.evaluation_loop))
+            self._graph_finding(key, Finding("NNL404", call, key, data=(
+                self.model.module.code_for_node(context.evaluation_loop))))
         if not evaluation:
             return
         layers = self.layers.get(key, None)
@@ -1183,6 +1196,21 @@ def no_grad_region(model: "ModuleModel", blocks: list[cst.CSTNode]
     return None
 
 
+def _recording_off(model: "ModuleModel", suite: cst.BaseSuite) -> Iterator[cst.CSTNode]:
+    """Statements of a no-grad body, minus those under a nested grad-enabling `with`."""
+    pending = list(suite.body) if isinstance(suite, cst.IndentedBlock) else [suite]
+    while pending:
+        statement = pending.pop()
+        if isinstance(statement, (cst.FunctionDef, cst.ClassDef)):
+            continue
+        yield statement
+        if isinstance(statement, cst.With) and any(
+                _grad_setting(model, item.item) is True for item in statement.items):
+            continue
+        for block in _blocks_of(statement):
+            pending.extend(block)
+
+
 def _context_name(model: "ModuleModel", expr: cst.BaseExpression) -> str:
     target = expr.func if isinstance(expr, cst.Call) else expr
     return model.module.code_for_node(target)
@@ -1224,6 +1252,6 @@ def computed_inside(model: "ModuleModel", region: cst.CSTNode, tensor: cst.BaseE
     memo = model.memo.setdefault("modes", {}).setdefault("regions", {})
     inside = memo.get(id(region))
     if inside is None:
-        inside = {id(statement) for statement in _statements_of(region.body)}
+        inside = {id(statement) for statement in _recording_off(model, region.body)}
         memo[id(region)] = inside
     return any(id(binding.statement) in inside for binding in found[1])
