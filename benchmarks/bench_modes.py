@@ -48,7 +48,8 @@ def main() -> None:
         without = min(run(texts) for _ in range(3))
     finally:
         modes.ModeAnalysis._run_all = original
-    print(f"{len(texts)} files, {lines} lines; with mode analysis {lines / with_analysis:,.0f} lines/s, "
+    print(f"{len(texts)} files, {lines} lines; "
+          f"with mode analysis {lines / with_analysis:,.0f} lines/s, "
           f"without {lines / without:,.0f} lines/s; ratio {with_analysis / without:.2f}")
 
 
