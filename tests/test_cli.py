@@ -154,7 +154,8 @@ def test_explain_prints_the_rule_text():
 def test_explain_unknown_code_exits_2_and_suggests():
     result = run_cli("explain", "NNL430")
     assert (result.returncode, result.stdout) == (2, "")
-    assert result.stderr.startswith("nnlint: unknown rule 'NNL430'; did you mean NNL403")
+    assert result.stderr == ("nnlint: unknown rule 'NNL430'; did you mean NNL405, NNL404, NNL403? "
+                             "(`nnlint rules` lists them all)\n")
 
 
 def test_no_command_prints_help_and_exits_2():
