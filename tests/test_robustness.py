@@ -34,9 +34,12 @@ BAD_INPUTS: dict[str, tuple[bytes, list[tuple[int, str]]]] = {
     # ... but positions come from libcst's recursive metadata pass: too deep is NNL001
     "deep_expression_hazard.py": (b"import torch\nx = " + b"-" * 1000 + b"1\nm = torch.nn."
                                   b"Linear(1, 1)\nm.eval\n", [(1, "NNL001")]),
-    # libcst's native parser and our walk manage 1,000 nested parentheses: simply clean
+    # CPython refuses more than 200 nested brackets; libcst's parser would crash the
+    # process near 2,000, so such files are NNL001 before libcst sees them
     "deep_parentheses.py": (b"import torch\nx = " + b"(" * 1000 + b"1" + b")" * 1000 + b"\n",
-                            []),
+                            [(2, "NNL001")]),
+    "very_deep_parentheses.py": (b"import torch\nx = " + b"(" * 5000 + b")" * 5000 + b"\n",
+                                 [(2, "NNL001")]),
     "deep_block.py": (b"import torch\n" + b"".join(b"    " * i + b"if x:\n" for i in range(200))
                       + b"    " * 200 + b"pass\n", [(102, "NNL001")]),
     "binary.py": (bytes(range(256)) * 8, [(2, "NNL001")]),
