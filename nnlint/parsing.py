@@ -21,6 +21,8 @@ class ParseFailure(Exception):
 #: from memory); libcst's native parser crashes the process at about 2,000, so files past
 #: CPython's limit never reach it
 MAX_BRACKET_DEPTH = 200
+
+
 class _Brackets(dict):
     """str.translate table that deletes every character but brackets."""
 
