@@ -104,7 +104,7 @@ def test_one_minus_epsilon_message_uses_the_gap_below_one():
 # -- NNL303 / NNL304: exp overflow ------------------------------------------------------------
 def naive_softmax(scores):
     weights = np.exp(scores)
-    return weights / weights.sum()  # noqa: NNL303 (the hazard, on purpose)
+    return weights / weights.sum()  # noqa: NNL303 - the hazard, shown on purpose
 
 
 def test_naive_softmax_is_nan_in_float32_and_scipy_is_not():
@@ -130,7 +130,7 @@ def test_overflow_threshold_in_the_message_is_where_numpy_overflows():
 def test_naive_logsumexp_overflows_and_scipy_logsumexp_does_not():
     scores = np.array([1000.0, 0.0])
     with np.errstate(over="ignore"):
-        assert np.isinf(np.log(np.sum(np.exp(scores))))  # noqa: NNL304 (the hazard, on purpose)
+        assert np.isinf(np.log(np.sum(np.exp(scores))))  # noqa: NNL304 - on purpose
     assert special.logsumexp(scores) == pytest.approx(1000.0)
     messages = findings("import numpy as np\nnorm = np.log(np.sum(np.exp(s)))\n")
     assert messages == [("NNL304", "`log(sum(exp(x)))` is inf once a score passes "

@@ -46,6 +46,10 @@ def active_limits(model: "ModuleModel", function: cst.FunctionDef | None,
 def log_argument(model: "ModuleModel", call: cst.Call) -> cst.BaseExpression | None:
     """X when `call` is `log(X)`, `log2(X)`, `log10(X)` or `X.log()` (every candidate)."""
     func = call.func
+    # cheapest test first: an attribute not named log* is neither form (a bare name may be
+    # an alias such as `from numpy import log as ln`, so names are always resolved)
+    if isinstance(func, cst.Attribute) and func.attr.value not in api.LOG_METHODS:
+        return None
     names = model.resolve(func)
     if names:
         return positional_argument(call, 0) if names <= api.LOG_FUNCTIONS else None

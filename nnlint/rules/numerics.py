@@ -77,7 +77,7 @@ class LogOfMaybeZero(Rule):
             return
         statement = enclosing_statement(self.context)
         fact = fact_of(self.model, argument, self.context.function, statement)
-        if not fact.can_be_zero or fact.is_guarded:
+        if not fact.can_be_zero:
             return
         if is_masked(self.model, node, self.context):
             return
@@ -135,6 +135,8 @@ class EpsilonVanishes(Rule):
 
     def _clamp_bounds(self, node: cst.Call):
         func = node.func
+        if isinstance(func, cst.Attribute) and func.attr.value not in api.CLAMP_FINAL_NAMES:
+            return None
         names = self.model.resolve(func)
         if names:
             if len(names) != 1:

@@ -79,6 +79,9 @@ CLAMP_METHODS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
 #: elementwise maximum: either argument is the floor of the other
 MAXIMUM_FUNCTIONS = _spell(("torch",) + _NUMPY + ("tensorflow", "tensorflow.math"),
                            ("maximum", "fmax"))
+#: the final names of every clamp-style function and method (a cheap first test)
+CLAMP_FINAL_NAMES = frozenset(name.rpartition(".")[2] for name in (
+    *CLAMP_FUNCTIONS, *MAXIMUM_FUNCTIONS)) | frozenset(CLAMP_METHODS)
 
 #: `where(condition, a, b)`: the masking guard of a log
 WHERE_FUNCTIONS = _spell(("torch",) + _NUMPY + ("tensorflow",), ("where",))
