@@ -10,6 +10,7 @@ from nnlint.analysis.api.losses import KERAS_EPSILON
 from nnlint.analysis.losses import (
     double_sigmoid_range, double_softmax_ceiling, double_softmax_floor, keras_clip_floor_loss,
 )
+from nnlint.analysis.project import ProjectIndex
 from nnlint.config import Settings, with_default_ignores
 from nnlint.engine import check_file
 from tests.conftest import FIXTURES
@@ -19,7 +20,8 @@ RNG = np.random.default_rng(20261202)  # fixed seed: the checks are deterministi
 
 def findings(relative: str) -> dict[int, str]:
     path = FIXTURES / "rules" / relative
-    result = check_file(str(path), with_default_ignores(Settings(root=str(path.parent))))
+    settings = with_default_ignores(Settings(root=str(path.parent)))
+    result = check_file(str(path), settings, ProjectIndex(settings))
     return {finding.line: finding.message for finding in result.findings}
 
 
@@ -66,6 +68,18 @@ def test_messages_carry_the_bound_of_the_fixtures_class_count():
     delay_ceiling = float(special.softmax(np.eye(delay_classes)[0])[0])
     message = findings(keras)[fixture_line(keras, "SparseCategoricalCrossentropy(from_logits")]
     assert f"p <= {delay_ceiling:.3f} over {delay_classes} classes" in message
+
+
+def test_class_count_crosses_modules_through_summaries():
+    # RegionNet's head has len(ROUTE_REGIONS) outputs, in another module of the tree.
+    source = (FIXTURES / "rules" / "NNL501" / "good_route_models.py").read_text()
+    regions = re.search(r"^ROUTE_REGIONS = \((.*)\)$", source, re.M).group(1).count(",") + 1
+    ceiling = float(special.softmax(np.eye(regions)[0])[0])
+    relative = "NNL501/bad_cross_module.py"
+    messages = findings(relative)
+    for text in ("loss = criterion(probs, regions)", "F.cross_entropy(direct(features)"):
+        message = messages[fixture_line(relative, text)]
+        assert f"p <= {ceiling:.3f} over {regions} classes" in message, message
 
 
 def _cross_entropy(scores: np.ndarray, target: int, twice: bool) -> float:

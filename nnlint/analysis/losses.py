@@ -9,6 +9,7 @@ a string). The consequence numbers of feeding a loss the wrong kind of input are
 """
 from __future__ import annotations
 
+import json
 import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
@@ -20,11 +21,14 @@ from nnlint.analysis.api.losses import (
     KERAS_LOSS_CLASSES, KERAS_LOSS_STRINGS, LAYER_PREFIXES, LOSS_CLASSES, LOSS_FUNCTIONS,
     STACK_EDIT_METHODS, Expects, LossSpec,
 )
+from nnlint.analysis.api.numerics import FORWARD_METHODS, MODULE_PRESERVING_METHODS
 from nnlint.analysis.loops import bound_values
-from nnlint.analysis.values import Fact, constant_value, reaching_values
+from nnlint.analysis.summary import register_summariser
+from nnlint.analysis.values import Fact, Kind, constant_value, fact_of, reaching_values
 
 if TYPE_CHECKING:
-    from nnlint.analysis.model import ModuleModel
+    from nnlint.analysis.model import ClassInfo, ModuleModel
+    from nnlint.analysis.summary import ModuleSummary
 
 #: packages whose files may compile a Keras model
 KERAS_PACKAGES = frozenset({"tensorflow", "keras", "tf_keras"})
@@ -289,11 +293,16 @@ def keras_clip_floor_loss() -> float:
 
 
 # -- how many classes a probability covers -----------------------------------------------------
-def class_count(model: "ModuleModel", fact: Fact, function: cst.FunctionDef | None) -> int | None:
-    """The number of classes of a softmax output, when its layer's width is visible."""
+def class_count(model: "ModuleModel", fact: Fact, function: cst.FunctionDef | None,
+                prediction: cst.BaseExpression | None = None) -> int | None:
+    """The number of classes of a softmax output, when its layer's width is visible.
+
+    Without the producing call (`fact.origin`: the softmax was applied in another module),
+    `prediction` is followed to a model built from the tree and that module's summary.
+    """
     origin = fact.origin
     if not isinstance(origin, cst.Call):
-        return None
+        return _exported_count(model, prediction, function) if prediction is not None else None
     owner = _owner_of(model, origin, function)
     width = _layer_width(model, origin, owner)
     if width is not None:
@@ -373,3 +382,89 @@ def _owner_of(model: "ModuleModel", node: cst.CSTNode,
             if any(binding.value is node for binding in bindings):
                 return candidate
     return function
+
+
+# -- class counts across modules -----------------------------------------------------------
+def _instance_count(model: "ModuleModel", info: "ClassInfo") -> int | None:
+    """The class count of what calling an instance of `info` returns (its forward)."""
+    forward = next((info.methods[name] for name in FORWARD_METHODS if name in info.methods),
+                   None)
+    if forward is None:
+        return None
+    scope = model.scope_of(forward)
+    counts = set()
+    for value in scope.returns:
+        fact = fact_of(model, value, forward)
+        if fact.kind is not Kind.PROB:
+            return None
+        counts.add(class_count(model, fact, forward))
+    return counts.pop() if len(counts) == 1 else None
+
+
+def _constructed_class(model: "ModuleModel", expr: cst.BaseExpression) -> "ClassInfo | None":
+    """The local class `expr` builds: `Net()`, `Net().to(device)`, `Net().eval()`."""
+    for _ in range(4):
+        if not isinstance(expr, cst.Call):
+            return None
+        func = expr.func
+        if isinstance(func, cst.Attribute) and func.attr.value in MODULE_PRESERVING_METHODS:
+            expr = func.value
+            continue
+        if isinstance(func, cst.Name):
+            return model.classes.get(func.value)
+        return None
+    return None
+
+
+@register_summariser
+def _summarise_class_counts(model: "ModuleModel", summary: "ModuleSummary") -> None:
+    """Export class counts: "c" for a class's instances, "i<k>c" for a function's results."""
+    for name, info in model.classes.items():
+        count = _instance_count(model, info)
+        if count is not None:
+            summary.facts[f"losses:{name}"] = json.dumps({"c": count})
+    for name, function in model.functions.items():
+        slots = {}
+        for value in model.scope_of(function).returns:
+            elements = value.elements if isinstance(value, (cst.Tuple, cst.List)) else None
+            built = [element.value for element in elements] if elements else [value]
+            for position, element in enumerate(built):
+                info = _constructed_class(model, element)
+                count = _instance_count(model, info) if info is not None else None
+                if count is not None:
+                    slots[f"i{position}c" if elements else "c"] = count
+        if slots:
+            summary.facts[f"losses:{name}"] = json.dumps(slots, sort_keys=True)
+
+
+def _exported_count(model: "ModuleModel", prediction: cst.BaseExpression,
+                    function: cst.FunctionDef | None) -> int | None:
+    """Follow `probs = net(x)`, `net, _ = build()` to a summary of another tree module."""
+    if model.project is None:
+        return None
+    if isinstance(prediction, cst.Name):
+        values = reaching_values(model, prediction, function)
+        if not values or len(values) != 1:
+            return None
+        prediction = values[0]
+    if not isinstance(prediction, cst.Call) or not isinstance(prediction.func, cst.Name):
+        return None
+    found = model.lookup(prediction.func.value, model.scope_of(function))
+    if found is None or len(found[1]) != 1 or found[1][0].value is None:
+        return None
+    binding = found[1][0]
+    built = binding.value
+    slot = "c" if binding.index is None else f"i{binding.index}c"
+    while (isinstance(built, cst.Call) and isinstance(built.func, cst.Attribute)
+           and built.func.attr.value in MODULE_PRESERVING_METHODS):
+        built = built.func.value
+    if not isinstance(built, cst.Call):
+        return None
+    canonical = model.canonical(built.func)
+    if canonical is None:
+        return None
+    text = model.project.exported_fact(canonical, "losses", model)
+    if not text:
+        return None
+    count = json.loads(text).get(slot)
+    return count if isinstance(count, int) else None

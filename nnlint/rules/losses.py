@@ -82,7 +82,7 @@ class ProbabilitiesIntoLogitLoss(_LossRule):
         if use.expects is not Expects.LOGITS or fact.kind is not Kind.PROB:
             return
         if use.spec.activation == "softmax":
-            classes = class_count(self.model, fact, self.context.function)
+            classes = class_count(self.model, fact, self.context.function, use.prediction)
             if classes is not None:
                 consequence = (f"p <= {double_softmax_ceiling(classes):.3f} over {classes} "
                                f"classes, loss >= {double_softmax_floor(classes):.2f}")
