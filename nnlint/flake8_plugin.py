@@ -82,6 +82,9 @@ class Plugin:
     def _findings(self):
         from nnlint.engine import PARSE_ERROR, lint_text
 
+        if self._filename.endswith(".ipynb"):
+            return []  # notebook JSON is not Python; `nnlint check` reads notebooks itself
+
         folder = os.path.dirname(os.path.abspath(self._filename))
         settings = _settings_for_folder(folder)
         if self.precision is not None:

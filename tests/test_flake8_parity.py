@@ -88,3 +88,11 @@ def test_plugin_leaves_syntax_errors_to_flake8(tmp_path):
     result = flake8("broken.py", cwd=tmp_path, select="NNL,E999")
     assert "E999" in result.stdout and "NNL" not in result.stdout
     assert "Traceback" not in result.stderr
+
+
+def test_plugin_ignores_notebook_json_passed_by_filename(tmp_path):
+    notebook = tmp_path / "review.ipynb"
+    notebook.write_text('{"cells": [{"cell_type": "code", "source": "import torch\\nm.eval\\n'
+                        'x.backward"}], "nbformat": 4, "metadata": {}}')
+    result = flake8("--filename=*.ipynb", "review.ipynb", cwd=tmp_path, select="NNL")
+    assert (result.stdout, "Traceback" in result.stderr) == ("", False)
