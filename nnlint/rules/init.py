@@ -21,7 +21,8 @@ DEPTH_CHANGE_LIMIT = 1000.0
 SATURATED_LIMIT = 0.5
 #: names a hand-written weight matrix goes by (W1, W_hidden, weights, kernel): the fallback,
 #: which has no forward chain to prove an array is a weight, trusts only these
-_WEIGHT_NAME = re.compile(r"(?:^|[._])(?:w|weights?|kernel)(?:\d*|_\w*)$", re.I)
+_WEIGHT_NAME = re.compile(
+    r"^(?:self\.)?(?:w|weights?|kernel)(?:_?\d+|_(?:in|out|hidden|ih|hh|input|output))?$", re.I)
 
 
 def _names(layers: list[Layer]) -> str:
