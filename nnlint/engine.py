@@ -200,7 +200,7 @@ def analyse_module(module: cst.Module, text: str, path: str, settings: Settings,
                    apply_noqa: bool = True, keep_fixes: bool = False) -> FileResult:
     """Run the model pass and the rule walk on a parsed module."""
     result = FileResult(path)
-    model = ModuleModel(module, path, settings, project, package)
+    model = ModuleModel(module, path, settings, project, package, source=text)
     if project is not None:
         project.remember(path, text.encode("utf-8", "surrogatepass"), model.summary)
     rule_classes = enabled_rules(settings, path)

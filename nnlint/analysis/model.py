@@ -71,8 +71,10 @@ class ModuleModel:
 
     def __init__(self, module: cst.Module, path: str = "<string>",
                  settings: "Settings | None" = None, project: "ProjectIndex | None" = None,
-                 package: str | None = None) -> None:
+                 package: str | None = None, source: str | None = None) -> None:
         self.module = module
+        #: the text the module was parsed from (regenerated from the tree only when absent)
+        self._source = source
         self.path = path
         self.settings = settings
         self.project = project
@@ -237,6 +239,13 @@ class ModuleModel:
         self._block(node.body, scope, info)
 
     # -- queries ---------------------------------------------------------------------------
+    @property
+    def source(self) -> str:
+        """The file's text; callers never need `module.code`, which regenerates it."""
+        if self._source is None:
+            self._source = self.module.code
+        return self._source
+
     def resolve(self, expr: cst.BaseExpression) -> frozenset[str]:
         """Every canonical dotted name `expr` may denote (empty when unknown)."""
         return self.names.resolve(expr)

@@ -205,7 +205,7 @@ def _file_precision(model: "ModuleModel") -> tuple[str, bool]:
 
 
 def _compute_file_precision(model: "ModuleModel") -> tuple[str, bool]:
-    text = model.module.code
+    text = model.source
     found: dict[str, set[str]] = {}
     if _EVIDENCE_HINT.search(text):
         found = _evidence(model, text)

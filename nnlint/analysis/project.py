@@ -164,11 +164,12 @@ class ProjectIndex:
         from nnlint.parsing import ParseFailure, parse
 
         try:
-            module = parse(decode(data))
+            text = decode(data)
+            module = parse(text)
         except (DecodeError, ParseFailure):
             return None
         package, _, _ = package_of(path)
-        return ModuleModel(module, path, self.settings, self, package).summary()
+        return ModuleModel(module, path, self.settings, self, package, source=text).summary()
 
     # -- questions rules ask -------------------------------------------------------------
     def summary_for_name(self, canonical: str, model: "ModuleModel"
