@@ -254,6 +254,10 @@ class ModuleModel:
         """The canonical dotted name of `expr` when it is unique."""
         return self.names.resolve_one(expr)
 
+    def quote(self, node: cst.CSTNode, limit: int) -> str:
+        """The source of `node` shortened for a message (see `shorten`)."""
+        return shorten(self.module.code_for_node(node), limit)
+
     def scope_of(self, function: FunctionNode | None) -> Scope:
         """The scope of a function (the module scope for None)."""
         if function is None:
@@ -300,6 +304,12 @@ class ModuleModel:
         from nnlint.analysis.summary import summarise
 
         return summarise(self)
+
+
+def shorten(text: str, limit: int) -> str:
+    """Text for a one-line message: whitespace collapsed, cut to `limit` with "..."."""
+    text = " ".join(text.split())
+    return text if len(text) <= limit else text[:limit - 3] + "..."
 
 
 def _first_parameter(function: FunctionNode) -> str | None:

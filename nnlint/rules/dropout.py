@@ -24,8 +24,7 @@ _QUOTE_LIMIT = 32
 
 
 def _quote(model, node: cst.CSTNode) -> str:
-    text = " ".join(model.module.code_for_node(node).split())
-    return text if len(text) <= _QUOTE_LIMIT else text[: _QUOTE_LIMIT - 3] + "..."
+    return model.quote(node, _QUOTE_LIMIT)
 
 
 def _describe(model, node: cst.CSTNode) -> str:

@@ -4,6 +4,7 @@ from __future__ import annotations
 import libcst as cst
 
 from nnlint.analysis.api.modes import BACKWARD_FUNCTIONS, UNCALLED_METHOD_CONSEQUENCES
+from nnlint.analysis.model import shorten
 from nnlint.analysis.modes import ModeAnalysis, computed_inside, no_grad_region
 from nnlint.finding import Severity
 from nnlint.rules.base import Fix, Rule, register
@@ -40,12 +41,6 @@ class ModeSwitchNotCalled(Rule):
         expression = self.model.module.code_for_node(target)
         self.report(target, expression=expression, consequence=consequence,
                     autofix=Fix(target, cst.Call(func=target)))
-
-
-def _shortened(text: str, limit: int = 30) -> str:
-    """Keep messages on one line of at most 100 characters (STYLE.md)."""
-    text = " ".join(text.split())
-    return text if len(text) <= limit else text[:limit - 3] + "..."
 
 
 def _severity_for(layers: str) -> Severity | None:
@@ -194,7 +189,7 @@ class EvalTracksGradients(Rule):
 
     def visit_Call(self, node: cst.Call) -> None:
         for found in ModeAnalysis.of(self.model).findings_at(node, self.code):
-            self.report(node, model=found.model, data=_shortened(found.data))
+            self.report(node, model=found.model, data=shorten(found.data, 30))
 
 
 @register
@@ -251,5 +246,5 @@ class BackwardUnderNoGrad(Rule):
         operation = ("backward of" if isinstance(func, cst.Attribute)
                      and func.attr.value == "backward" else "autograd.grad of")
         self.report(node, operation=operation,
-                    tensor=_shortened(self.model.module.code_for_node(tensor), 24),
+                    tensor=self.model.quote(tensor, 24),
                     context=context_name)

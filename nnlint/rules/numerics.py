@@ -4,6 +4,7 @@ from __future__ import annotations
 import libcst as cst
 
 from nnlint.analysis.api import numerics as api
+from nnlint.analysis.model import shorten
 from nnlint.analysis.precision import FloatLimits, limits
 from nnlint.analysis.stability import (active_limits, enclosing_statement, is_masked,
                                        log_argument, may_be_large)
@@ -83,7 +84,7 @@ class LogOfMaybeZero(Rule):
             return
         bounds = active_limits(self.model, self.context.function, fact)
         when, fix = _zero_cause(fact, bounds)
-        self.report(node, what=_clip(fact.description or "a value", 40), when=when, fix=fix)
+        self.report(node, what=shorten(fact.description or "a value", 40), when=when, fix=fix)
 
 
 @register
@@ -210,7 +211,7 @@ class EpsilonVanishes(Rule):
     def _spelling(self, expr: cst.BaseExpression, value: float) -> str:
         if isinstance(expr, (cst.Integer, cst.Float)):
             return expr.value
-        return f"{_clip(self.model.module.code_for_node(expr), 20)} = {value:g}"
+        return f"{self.model.quote(expr, 20)} = {value:g}"
 
 
 class _ExpOverflow(Rule):
@@ -307,8 +308,3 @@ class NaiveLogSumExp(_ExpOverflow):
         inner = summed_exp_argument(self.model, argument, scope, statement)
         if inner is not None and self._unbounded(inner):
             self.report(node, **self._overflow_fields())
-
-
-def _clip(text: str, width: int) -> str:
-    text = " ".join(text.split())
-    return text if len(text) <= width else text[: width - 3] + "..."
