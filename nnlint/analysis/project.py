@@ -21,7 +21,7 @@ if TYPE_CHECKING:
 
 #: how many import hops a summary may follow, and how many files one index may summarise
 MAX_DEPTH = 3  # common practice: model -> layers -> blocks covers real projects
-MAX_SUMMARIES = 200
+MAX_SUMMARIES = 200  # common practice: a bound on time and memory, not a measured value
 
 
 def package_of(path: str | os.PathLike) -> tuple[str | None, str | None, Path]:
