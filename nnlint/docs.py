@@ -14,13 +14,13 @@ START, END = "<!-- rule-table:start -->", "<!-- rule-table:end -->"
 
 
 def rule_table() -> str:
-    rows = ["| code | name | severity | flags |", "|---|---|---|---|"]
+    rows = ["| code | name | severity | flags | fix |", "|---|---|---|---|---|"]
     for rule in all_rules():
         if rule.retired:
             continue
         default = "" if rule.enabled_by_default else " (off by default)"
         rows.append(f"| {rule.code} | {rule.name} | {rule.severity.value}{default} | "
-                    f"{rule.summary} |")
+                    f"{rule.summary} | {'yes' if rule.rewrite else ''} |")
     return "\n".join(rows)
 
 

@@ -142,3 +142,12 @@ def test_fixing_a_copy_of_the_demo_leaves_only_unfixable_findings(tmp_path):
         changed |= {(str(relative), number) for number, (a, b) in enumerate(zip(old, new), 1)
                     if a != b}
     assert changed == fixed_lines
+
+
+def test_rules_declare_their_rewrite_exactly_when_their_findings_are_fixable():
+    from nnlint.rules.base import all_rules
+
+    fixable_codes = {finding.code for path in FIXABLE_FIXTURES
+                     for finding in check_file(str(path), SETTINGS).findings if finding.fixable}
+    declared = {rule.code for rule in all_rules() if rule.rewrite}
+    assert fixable_codes == declared

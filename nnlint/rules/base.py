@@ -62,6 +62,9 @@ class Rule:
     bad: ClassVar[str] = ""
     good: ClassVar[str] = ""
     references: ClassVar[tuple[str, ...]] = ()
+    #: what `nnlint fix` rewrites, in a few words ("adds the missing call"); "" when no
+    #: finding of this rule carries a fix
+    rewrite: ClassVar[str] = ""
     enabled_by_default: ClassVar[bool] = True
     retired: ClassVar[bool] = False
     #: True when the CLI emits it itself instead of a visitor (NNL001)
@@ -99,6 +102,8 @@ class Rule:
             lines += ["Flagged:", *("    " + line for line in cls.bad.splitlines()), ""]
         if cls.good:
             lines += ["Not flagged:", *("    " + line for line in cls.good.splitlines()), ""]
+        if cls.rewrite:
+            lines += [f"Automatic fix (`nnlint fix`): {cls.rewrite}.", ""]
         if cls.references:
             lines += ["References:", *("  - " + ref for ref in cls.references), ""]
         if not cls.enabled_by_default:

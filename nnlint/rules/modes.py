@@ -26,6 +26,7 @@ class ModeSwitchNotCalled(Rule):
     )
     bad = "model.eval\nwith torch.no_grad():\n    scores = model(batch)"
     good = "model.eval()\nwith torch.no_grad():\n    scores = model(batch)"
+    rewrite = "adds the missing call parentheses"
     references = (
         "PyTorch documentation, torch.nn.Module.eval and torch.optim.Optimizer.zero_grad",
         "Python Language Reference, 7.1 Expression statements",
