@@ -151,3 +151,23 @@ def test_rules_declare_their_rewrite_exactly_when_their_findings_are_fixable():
                      for finding in check_file(str(path), SETTINGS).findings if finding.fixable}
     declared = {rule.code for rule in all_rules() if rule.rewrite}
     assert fixable_codes == declared
+
+
+@pytest.mark.parametrize("source, expected", [
+    # after the last import of the top block, not between later definitions
+    ('"""Doc."""\nimport torch\nimport numpy as np\n\nX = 1\n',
+     '"""Doc."""\nimport torch\nimport numpy as np\nimport torch.nn.functional as F\n\nX = 1\n'),
+    # no import before the first definition: after the docstring
+    ('"""Doc."""\n\ndef f():\n    import torch\n',
+     '"""Doc."""\nimport torch.nn.functional as F\n\ndef f():\n    import torch\n'),
+    # already there (other spacing before it): nothing added
+    ('import torch\n\n\nimport torch.nn.functional as F\n',
+     'import torch\n\n\nimport torch.nn.functional as F\n'),
+])
+def test_imports_a_fix_needs_are_added_once_after_the_import_block(source, expected):
+    import libcst as cst
+
+    from nnlint.fix import _with_imports
+
+    imports = ["import torch.nn.functional as F", "import torch.nn.functional as F"]
+    assert _with_imports(cst.parse_module(source), imports).code == expected

@@ -17,13 +17,17 @@ class Fix:
     """One unambiguous rewrite: replace `target` (a node of the parsed module) by `replacement`.
 
     `nnlint fix` applies it with libcst, so everything outside `target` stays byte-identical.
+    `imports` are top-level import statements the replacement needs (`"import torch"`); the
+    fixer adds each one the module does not already contain, after its last top-level import.
     """
 
-    __slots__ = ("target", "replacement")
+    __slots__ = ("target", "replacement", "imports")
 
-    def __init__(self, target: cst.CSTNode, replacement: cst.CSTNode) -> None:
+    def __init__(self, target: cst.CSTNode, replacement: cst.CSTNode,
+                 imports: tuple[str, ...] = ()) -> None:
         self.target = target
         self.replacement = replacement
+        self.imports = imports
 
 
 class Report:
