@@ -565,3 +565,28 @@ def torch_module_method(model: "ModuleModel",
             return function, info
         return None
     return None
+
+
+def self_name_at(model: "ModuleModel", context: "WalkContext",
+                 method: cst.FunctionDef) -> str | None:
+    """The name the walk's position reaches `method`'s instance by (its first parameter).
+
+    None when the method rebinds it, or a nested function or lambda on the way shadows it.
+    """
+    name = _first_parameter_name(method)
+    if name is None or model.scope_of(method).bindings.get(name):
+        return None
+    inside = False
+    for block in context.blocks:
+        if block is method:
+            inside = True
+        elif inside and isinstance(block, (cst.FunctionDef, cst.Lambda)):
+            params = block.params
+            shadowing = {param.name.value for param in (
+                *params.posonly_params, *params.params, *params.kwonly_params)}
+            shadowing |= {star.name.value for star in (params.star_arg, params.star_kwarg)
+                          if isinstance(star, cst.Param)}
+            if name in shadowing or (isinstance(block, cst.FunctionDef)
+                                     and model.scope_of(block).bindings.get(name)):
+                return None
+    return name if inside else None

@@ -19,9 +19,10 @@ import libcst as cst
 
 from nnlint.analysis.api import EXTERNAL_PACKAGES
 from nnlint.analysis.api.loops import (
-    ACCUMULATING_PACKAGES, BACKWARD_METHODS, DETACHING_ATTRIBUTES, DETACHING_BUILTINS,
-    DETACHING_METHODS, GRAD_CLEARING_METHODS, GRAD_DISABLING_CONTEXTS, GRAD_SCALERS,
-    GRAD_SWITCH_CONTEXT, NOT_OPTIMIZER_PREFIXES, OPTIMIZER_PREFIX, RESET_METHODS, RESET_WORDS,
+    ACCUMULATING_PACKAGES, BACKWARD_METHODS, BACKWARD_RUNNERS, DETACHING_ATTRIBUTES,
+    DETACHING_BUILTINS, DETACHING_METHODS, GRAD_CLEARING_METHODS, GRAD_DISABLING_CONTEXTS,
+    GRAD_SCALERS, GRAD_SWITCH_CONTEXT, NOT_OPTIMIZER_PREFIXES, NUMBER_REDUCING_BUILTINS,
+    NUMBER_SINK_BUILTINS, OPTIMIZER_PREFIX, RESET_METHODS, RESET_WORDS,
 )
 from nnlint.analysis.names import dotted_name
 
@@ -560,3 +561,160 @@ def may_backward(event: Event) -> bool:
     if event.kind is not EventKind.OPAQUE:
         return False
     return event.discarded or "backward" in event.callee.lower()
+
+
+# -- running totals that `nnlint fix` may turn into Python numbers -------------------------------
+#: what a running total starts as: a Python number (`0.0`) or an empty list (`[]`)
+NUMBER_TOTAL = "number"
+LIST_TOTAL = "list"
+
+
+def number_totals(model: "ModuleModel", function: cst.FunctionDef | None) -> dict[str, str]:
+    """Names of `function`'s own scope that only ever hold a running total of numbers.
+
+    Every binding is a number literal (`total = 0.0`), an addition to the name itself
+    (`total += x`, `total = total + x`), or for a list an empty list (`seen = []`).
+    Name -> NUMBER_TOTAL or LIST_TOTAL.
+    """
+    memo = model.memo.setdefault("loops.number_totals", {})
+    scope = model.scope_of(function)
+    found = memo.get(id(scope))
+    if found is None:
+        found = {}
+        for name, bindings in scope.bindings.items():
+            if name in scope.outer_names or name in scope.parameters:
+                continue
+            kinds = {_total_kind(name, binding) for binding in bindings}
+            if len(kinds) == 1 and None not in kinds:
+                found[name] = kinds.pop()
+        memo[id(scope)] = found
+    return found
+
+
+def _total_kind(name: str, binding) -> str | None:
+    value = binding.value
+    if binding.augmented is not None:
+        return NUMBER_TOTAL if isinstance(binding.augmented, cst.AddAssign) else None
+    if isinstance(value, (cst.Integer, cst.Float)):
+        return NUMBER_TOTAL
+    if isinstance(value, cst.List) and not value.elements:
+        return LIST_TOTAL
+    if isinstance(value, cst.BinaryOperation) and isinstance(value.operator, cst.Add) and any(
+            isinstance(side, cst.Name) and side.value == name
+            for side in (value.left, value.right)):
+        return NUMBER_TOTAL
+    return None
+
+
+def reads_as_number(model: "ModuleModel", name: cst.Name, ancestors: list[cst.CSTNode],
+                    kind: str, scope) -> bool:
+    """True when this read of a total would behave the same if it held Python floats.
+
+    Climbs from the name through arithmetic (and, for lists, indexing and sum/min/max) to
+    what consumes the value: an f-string, print/str/float/len, a comparison, the total's own
+    accumulation, or an expression statement. Anything else (a return, an assignment to
+    another name, a method call, a torch function) may need the tensor: False.
+    """
+    current: cst.CSTNode = name
+    for depth, ancestor in enumerate(reversed(ancestors)):
+        if depth > MAX_EXPRESSION_DEPTH:
+            return False
+        if isinstance(ancestor, cst.BinaryOperation):
+            if isinstance(ancestor.operator, cst.MatrixMultiply):
+                return False
+        elif isinstance(ancestor, cst.UnaryOperation):
+            pass
+        elif isinstance(ancestor, (cst.Comparison, cst.ComparisonTarget,
+                                   cst.FormattedStringExpression, cst.Expr)):
+            return True
+        elif isinstance(ancestor, cst.Arg):
+            if ancestor.star or ancestor.value is not current:
+                return False
+        elif isinstance(ancestor, cst.Call):
+            builtin = _builtin_name(model, ancestor.func, scope)
+            if builtin in NUMBER_SINK_BUILTINS:
+                return True
+            if builtin not in NUMBER_REDUCING_BUILTINS:
+                return False
+        elif isinstance(ancestor, cst.Subscript) and kind == LIST_TOTAL and \
+                ancestor.value is current:
+            pass
+        elif isinstance(ancestor, cst.Attribute) and kind == LIST_TOTAL and \
+                ancestor.value is current:
+            return ancestor.attr.value == "append"
+        elif isinstance(ancestor, cst.Assign):
+            return ancestor.value is current and _is_accumulation(ancestor, name.value)
+        else:
+            return False
+        current = ancestor
+    return False
+
+
+def _is_accumulation(statement: cst.Assign, name: str) -> bool:
+    """`total = total + x`: the read feeds the total's own running sum."""
+    return len(statement.targets) == 1 and isinstance(statement.targets[0].target, cst.Name) \
+        and statement.targets[0].target.value == name \
+        and isinstance(statement.value, cst.BinaryOperation) \
+        and isinstance(statement.value.operator, cst.Add)
+
+
+def _builtin_name(model: "ModuleModel", func: cst.BaseExpression, scope) -> str | None:
+    if not isinstance(func, cst.Name) or func.value not in _BUILTINS:
+        return None
+    if model.lookup(func.value, scope) is not None or model.resolve(func):
+        return None  # rebound or imported under a builtin's name
+    return func.value
+
+
+def is_scalar_loss(model: "ModuleModel", loss: cst.Name, events: list[Event],
+                   function: cst.FunctionDef | None) -> bool:
+    """True when some backward() of `events` runs on `loss` itself with no gradient argument.
+
+    PyTorch raises "grad can be implicitly created only for scalar outputs" otherwise
+    (torch.autograd.backward), so such a loss holds one element and `.item()` works.
+    `loss.backward()`, `scaler.scale(loss).backward()` (a GradScaler keeps the shape) and
+    `accelerator.backward(loss)` / `self.manual_backward(loss)` count.
+    """
+    for event in events:
+        call = event.node
+        if event.kind is not EventKind.BACKWARD or not isinstance(call, cst.Call) or \
+                not isinstance(call.func, cst.Attribute):
+            continue
+        receiver = call.func.value
+        positional = [arg for arg in call.args if arg.keyword is None]
+        if any(arg.star for arg in call.args):
+            continue
+        if not positional and not any(arg.keyword.value == "gradient" for arg in call.args):
+            if _is_name(receiver, loss.value):
+                return True
+            if (isinstance(receiver, cst.Call) and isinstance(receiver.func, cst.Attribute)
+                    and receiver.func.attr.value == "scale" and len(receiver.args) == 1
+                    and not receiver.args[0].keyword and not receiver.args[0].star
+                    and _is_name(receiver.args[0].value, loss.value)
+                    and step_role(model, receiver.func.value, function) is Role.SCALER):
+                return True
+        elif len(positional) == 1 and len(call.args) == 1 and \
+                _is_name(positional[0].value, loss.value) and \
+                _runs_backward_of_argument(model, call.func, function):
+            return True
+    return False
+
+
+def _runs_backward_of_argument(model: "ModuleModel", func: cst.Attribute,
+                               function: cst.FunctionDef | None) -> bool:
+    """`self.manual_backward(loss)`, `torch.autograd.backward(loss)`, `accelerator.backward(loss)`.
+
+    On a tensor, `out.backward(loss)` would pass `loss` as the gradient instead.
+    """
+    if func.attr.value == "manual_backward":
+        return True
+    if model.canonical(func) == "torch.autograd.backward":
+        return True
+    values = bound_values(model, func.value, function)
+    return bool(values) and all(
+        isinstance(value, cst.Call) and model.canonical(value.func) in BACKWARD_RUNNERS
+        for value in values)
+
+
+def _is_name(expr: cst.BaseExpression, name: str) -> bool:
+    return isinstance(expr, cst.Name) and expr.value == name

@@ -17,7 +17,8 @@ from typing import TYPE_CHECKING
 import libcst as cst
 
 from nnlint.analysis.api.losses import (
-    CLASS_COUNT_ARGUMENTS, KERAS_COMPILE, KERAS_COMPILE_LOSS_POSITION, KERAS_EPSILON,
+    INLINE_NORMALISER_METHODS, INLINE_NORMALISER_MODULES, INLINE_NORMALISERS, LOSS_CLASS_AXIS,
+    Normaliser, CLASS_COUNT_ARGUMENTS, KERAS_COMPILE, KERAS_COMPILE_LOSS_POSITION, KERAS_EPSILON,
     KERAS_LOSS_CLASSES, KERAS_LOSS_STRINGS, LAYER_PREFIXES, LOSS_CLASSES, LOSS_FUNCTIONS,
     STACK_EDIT_METHODS, Expects, LossSpec,
 )
@@ -47,6 +48,10 @@ class LossUse:
     label: str
     #: True when Keras's from_logits was left at its default (False)
     from_logits_default: bool = False
+    #: the call that configures the loss: the function call, or the loss object's construction
+    configured: cst.Call | None = None
+    #: canonical name of the loss function or class (`torch.nn.CrossEntropyLoss`)
+    canonical: str = ""
 
 
 def loss_of_call(model: "ModuleModel", call: cst.Call,
@@ -60,14 +65,15 @@ def loss_of_call(model: "ModuleModel", call: cst.Call,
             return None
         spec = specs.pop()
         label = model.module.code_for_node(func)
-        return _use(spec, call, call, label, constructed=False)
+        return _use(spec, call, call, label, constructed=False, canonical=min(names))
     built = _constructions(model, func, function)
     if built is None:
         return None
     uses = []
     for spec, construction in built:
         label = model.module.code_for_node(construction.func).rpartition(".")[2]
-        uses.append(_use(spec, construction, call, label, constructed=True))
+        uses.append(_use(spec, construction, call, label, constructed=True,
+                         canonical=min(model.resolve(construction.func))))
     if None in uses or len({(use.spec, use.expects) for use in uses}) != 1:
         return None  # bound to different losses, or configured differently
     return uses[0]
@@ -147,7 +153,7 @@ def _constructions(model: "ModuleModel", func: cst.BaseExpression,
 
 
 def _use(spec: LossSpec, configured: cst.Call, call: cst.Call | None, label: str,
-         constructed: bool) -> LossUse | None:
+         constructed: bool, canonical: str = "") -> LossUse | None:
     """The LossUse of `call`, with from_logits read from `configured` (None: unreadable).
 
     `configured` is the loss object's construction (`constructed`) or the function call.
@@ -156,7 +162,8 @@ def _use(spec: LossSpec, configured: cst.Call, call: cst.Call | None, label: str
     if call is not None and prediction is None:
         return None
     if not spec.has_from_logits:
-        return LossUse(spec, spec.expects, prediction, label)
+        return LossUse(spec, spec.expects, prediction, label, configured=configured,
+                       canonical=canonical)
     flag = _from_logits(configured, spec, constructed)
     if flag is None:
         return None
@@ -164,7 +171,8 @@ def _use(spec: LossSpec, configured: cst.Call, call: cst.Call | None, label: str
     expects = Expects.LOGITS if value else spec.expects
     if value:
         label = f"{label}(from_logits=True)"
-    return LossUse(spec, expects, prediction, label, from_logits_default=is_default)
+    return LossUse(spec, expects, prediction, label, from_logits_default=is_default,
+                   configured=configured, canonical=canonical)
 
 
 def _from_logits(call: cst.Call, spec: LossSpec,
@@ -468,3 +476,124 @@ def _exported_count(model: "ModuleModel", prediction: cst.BaseExpression,
         return None
     count = json.loads(text).get(slot)
     return count if isinstance(count, int) else None
+
+
+# -- an inline softmax/sigmoid whose removal hands the loss its logits ---------------------------
+def inline_normaliser_input(model: "ModuleModel", use: LossUse, call: cst.Call
+                            ) -> cst.BaseExpression | None:
+    """The logits inside `use.prediction` when it is the loss's own activation written inline.
+
+    `F.cross_entropy(F.softmax(scores, dim=1), y)` gives `scores`: the loss applies that
+    softmax itself, over the same axis, so passing `scores` computes what the code meant.
+    The input is returned whatever it is (`scores / temperature` too: those are the
+    logits the softmax normalised). None when the activation differs from the loss's, the
+    frameworks differ, the axis is not the loss's class axis or cannot be read, the call has
+    other arguments (`dtype=` would change the arithmetic), or the loss sets its own axis.
+    """
+    prediction = use.prediction
+    framework = use.canonical.split(".")[0]
+    if not isinstance(prediction, cst.Call) or framework not in LOSS_CLASS_AXIS:
+        return None
+    found = _normaliser_call(model, prediction)
+    if found is None:
+        return None
+    normaliser, normaliser_framework, logits, axis = found
+    if normaliser.activation != use.spec.activation or normaliser_framework != framework:
+        return None
+    if normaliser.axis_keyword is not None:
+        number = normaliser.default_axis if axis is None else _literal_int(axis)
+        if number is None or number != LOSS_CLASS_AXIS[framework]:
+            return None
+    if framework == "tensorflow" and not _loss_uses_last_axis(use, call):
+        return None
+    return logits
+
+
+def _normaliser_call(model: "ModuleModel", call: cst.Call
+                     ) -> tuple[Normaliser, str, cst.BaseExpression, cst.BaseExpression | None
+                                ] | None:
+    """(normaliser, framework, input, axis argument or None) of an inline softmax/sigmoid."""
+    canonical = model.canonical(call.func)
+    if canonical in INLINE_NORMALISERS:
+        normaliser = INLINE_NORMALISERS[canonical]
+        keywords = {keyword: 0 for keyword in normaliser.input_keywords}
+        if normaliser.axis_keyword is not None:
+            keywords[normaliser.axis_keyword] = 1
+        arguments = _only_arguments(call, keywords)
+        if arguments is None or 0 not in arguments:
+            return None
+        return normaliser, canonical.split(".")[0], arguments[0], arguments.get(1)
+    func = call.func
+    if isinstance(func, cst.Call) and model.canonical(func.func) in INLINE_NORMALISER_MODULES:
+        normaliser = INLINE_NORMALISER_MODULES[model.canonical(func.func)]
+        keywords = {normaliser.axis_keyword: 0} if normaliser.axis_keyword else {}
+        built = _only_arguments(func, keywords)
+        if built is None or len(call.args) != 1 or call.args[0].keyword is not None or \
+                call.args[0].star:
+            return None
+        return normaliser, "torch", call.args[0].value, built.get(0)
+    if isinstance(func, cst.Attribute) and func.attr.value in INLINE_NORMALISER_METHODS \
+            and not model.resolve(func):
+        normaliser = INLINE_NORMALISER_METHODS[func.attr.value]
+        keywords = {normaliser.axis_keyword: 0} if normaliser.axis_keyword else {}
+        arguments = _only_arguments(call, keywords)
+        if arguments is None:
+            return None
+        return normaliser, "torch", func.value, arguments.get(0)
+    return None
+
+
+def _only_arguments(call: cst.Call,
+                    keywords: dict[str, int]) -> dict[int, cst.BaseExpression] | None:
+    """Position -> argument, when every argument is one of `keywords` (name -> position)."""
+    found: dict[int, cst.BaseExpression] = {}
+    positions = len(set(keywords.values()))
+    positional = 0
+    for arg in call.args:
+        if arg.star:
+            return None
+        if arg.keyword is None:
+            if positional >= positions:
+                return None
+            found[positional] = arg.value
+            positional += 1
+        elif arg.keyword.value in keywords and keywords[arg.keyword.value] not in found:
+            found[keywords[arg.keyword.value]] = arg.value
+        else:
+            return None
+    return found
+
+
+def _literal_int(expr: cst.BaseExpression) -> int | None:
+    if isinstance(expr, cst.Integer):
+        return int(expr.value)
+    if isinstance(expr, cst.UnaryOperation) and isinstance(expr.operator, cst.Minus) and \
+            isinstance(expr.expression, cst.Integer):
+        return -int(expr.expression.value)
+    return None
+
+
+def _loss_uses_last_axis(use: LossUse, call: cst.Call) -> bool:
+    """True when a TensorFlow/Keras loss keeps its default axis (-1) for the classes.
+
+    `axis=` must be absent or -1, and no positional argument may reach the place where an
+    axis (or a label smoothing, which the softmax does not change but we do not judge) sits.
+    """
+    configured = use.configured
+    if configured is None:
+        return False
+    spec = use.spec
+    if spec.has_from_logits:
+        last = spec.from_logits_position if configured is call else \
+            spec.class_from_logits_position
+    else:
+        last = spec.position
+    if last is None:
+        return False
+    for checked in {id(configured): configured, id(call): call}.values():
+        for arg in checked.args:
+            if arg.keyword is not None and arg.keyword.value == "axis" and \
+                    _literal_int(arg.value) != -1:
+                return False
+    positional = [arg for arg in configured.args if arg.keyword is None]
+    return not any(arg.star for arg in configured.args) and len(positional) <= last + 1

@@ -6,18 +6,20 @@ from dataclasses import dataclass
 import libcst as cst
 
 from nnlint.analysis.api.dropout import (
-    SWITCHED_CALL_PACKAGES, TF1_ONLY_APIS, TF1_ONLY_NAMES, TF1_ONLY_PREFIXES,
-    TRAINING_SWITCH_KEYWORDS,
+    MODE_KEYWORD_FUNCTIONS, SWITCHED_CALL_PACKAGES, TF1_ONLY_APIS, TF1_ONLY_NAMES,
+    TF1_ONLY_PREFIXES, TRAINING_SWITCH_KEYWORDS,
 )
 from nnlint.analysis.dropout import (
     DROP, KEEP, branch_meanings, branch_path, dropout_call, evaluation_function,
     expression_name, function_has_mask, has_unpacked_arguments,
     identifier_words, is_literal_bool, is_monte_carlo_context, keep_key, literal_number,
     mentions_mask, no_grad_block, number_value, probability_kind, rate_argument,
-    rate_keep_key, switch_argument, torch_module_method, KEEP_WORDS, NOT_A_PROBABILITY,
+    rate_keep_key, self_name_at, switch_argument, torch_module_method, KEEP_WORDS,
+    NOT_A_PROBABILITY,
 )
+from nnlint.analysis.call_edits import attribute_of, with_keyword_appended
 from nnlint.finding import Severity
-from nnlint.rules.base import Rule, register
+from nnlint.rules.base import Fix, Rule, register
 
 #: longest expression quoted in a message before it is shortened (keeps lines near 100)
 _QUOTE_LIMIT = 32
@@ -274,6 +276,7 @@ class FunctionalDropoutAlwaysOn(Rule):
         "    def forward(self, features):\n"
         "        return F.dropout(features, p=0.3, training=self.training)"
     )
+    rewrite = "adds `training=self.training` to a functional dropout call that has no switch"
     references = (
         "PyTorch documentation, torch.nn.functional.dropout (training: apply dropout if True; "
         "default True)",
@@ -313,7 +316,24 @@ class FunctionalDropoutAlwaysOn(Rule):
             share = f" {number:.0%}"
         self.report(node, severity=severity, call=_quote(self.model, node.func),
                     method=f"{info.name}.{function.name.value}", problem=problem,
-                    share=share, fix=f"{keyword}=self.training")
+                    share=share, fix=f"{keyword}=self.training",
+                    autofix=self._fix(node, found.canonical, switch, function))
+
+    def _fix(self, node: cst.Call, canonical: str, switch: cst.Arg | None,
+             method: cst.FunctionDef) -> Fix | None:
+        """`training=<self>.training` appended, when the call lacks the switch.
+
+        An explicit `training=True` gets no fix: it may keep dropout on at prediction on
+        purpose. The module is reached through the method's own first parameter, and only
+        where no nested function or lambda rebinds that name.
+        """
+        keyword = MODE_KEYWORD_FUNCTIONS.get(canonical)
+        if switch is not None or keyword is None or not node.args:
+            return None
+        receiver = self_name_at(self.model, self.context, method)
+        if receiver is None:
+            return None
+        return Fix(node, with_keyword_appended(node, keyword, attribute_of(receiver, "training")))
 
 
 @register

@@ -3,14 +3,17 @@ from __future__ import annotations
 
 import libcst as cst
 
+from nnlint.analysis.api.loops import NON_TORCH_TENSOR_PACKAGES, SCALAR_PRESERVING_METHODS
+from nnlint.analysis.call_edits import with_method_call
 from nnlint.analysis.loops import (
     Event, EventKind, Iteration, Role, backward_inputs, bound_values, function_events,
-    graph_carrier, is_detaching_value, is_grad_disabling, iteration, may_backward, may_reset,
-    step_role, uses_accumulating_framework,
+    graph_carrier, is_detaching_value, is_grad_disabling, is_scalar_loss, iteration,
+    may_backward, may_reset, number_totals, reads_as_number, step_role,
+    uses_accumulating_framework,
 )
 from nnlint.analysis.names import dotted_name
 from nnlint.finding import Severity
-from nnlint.rules.base import Rule, register
+from nnlint.rules.base import Fix, Rule, register
 
 _LOOPS = (cst.For, cst.While)
 _SCOPES = (cst.FunctionDef, cst.ClassDef, cst.Lambda)
@@ -184,10 +187,64 @@ class LossHistoryKeepsGraph(Rule):
             "    loss.backward()\n"
             "    optimizer.step()\n"
             "    epoch_loss += loss.item()")
+    rewrite = ("adds `.item()` to a scalar loss summed into a number total (or appended to a "
+               "list) that is only printed, compared or summed later")
     references = (
         "PyTorch documentation, Frequently Asked Questions: 'Don't accumulate history across "
         "your training loop'",
     )
+
+    def __init__(self, model, context, sink) -> None:
+        super().__init__(model, context, sink)
+        #: findings whose fix waits for every read of their total (decided in leave_Module)
+        self._pending: list[tuple[cst.CSTNode, dict, tuple[int, str] | None, Fix | None]] = []
+        #: (id of scope, total name) read somewhere in a way that may need the tensor
+        self._tensor_reads: set[tuple[int, str]] = set()
+        #: names that are running totals of numbers in some scope seen so far (a cheap filter)
+        self._total_names: set[str] = set()
+
+    def visit_Module(self, node: cst.Module) -> None:
+        self._total_names |= set(number_totals(self.model, None))
+
+    def visit_FunctionDef(self, node: cst.FunctionDef) -> None:
+        self._total_names |= set(number_totals(self.model, node))
+
+    def visit_Name(self, node: cst.Name) -> None:
+        if node.value not in self._total_names or not self._is_read(node):
+            return
+        found = self.model.lookup(node.value, self.model.scope_of(self.context.function))
+        if found is None:
+            return
+        scope = found[0]
+        kind = number_totals(self.model, scope.node if scope.parent is not None else None
+                             ).get(node.value)
+        if kind is None:
+            return
+        if not reads_as_number(self.model, node, self.context.ancestors, kind,
+                               self.model.scope_of(self.context.function)):
+            self._tensor_reads.add((id(scope), node.value))
+
+    def _is_read(self, node: cst.Name) -> bool:
+        """False where the name is a binding or not a variable (`x.total`, `f(total=1)`)."""
+        parent = self.context.parent
+        if isinstance(parent, (cst.AssignTarget, cst.Param, cst.FunctionDef, cst.ClassDef,
+                               cst.ImportAlias, cst.AsName, cst.NameItem)):
+            return False
+        if isinstance(parent, (cst.For, cst.CompFor)):
+            return parent.target is not node
+        if isinstance(parent, cst.Attribute):
+            return parent.attr is not node
+        if isinstance(parent, cst.Arg):
+            return parent.keyword is not node
+        if isinstance(parent, (cst.AnnAssign, cst.AugAssign)):
+            return parent.target is not node  # an accumulation is judged by number_totals
+        return True
+
+    def leave_Module(self, node: cst.Module) -> None:
+        for reported, fields, total, fix in self._pending:
+            if total in self._tensor_reads:
+                fix = None
+            self.report(reported, autofix=fix, **fields)
 
     def visit_AugAssign(self, node: cst.AugAssign) -> None:
         if isinstance(node.operator, cst.AddAssign):
@@ -240,5 +297,56 @@ class LossHistoryKeepsGraph(Rule):
                                          function)
         if any(name == key or name.startswith(key + ".") for name in backpropagated):
             return
-        self.report(node, statement=self.model.module.code_for_node(node).strip(),
-                    loss=loss.value)
+        fields = {"statement": self.model.module.code_for_node(node).strip(),
+                  "loss": loss.value}
+        total_of_fix = self._total_of_fix(total, function)
+        fix = None
+        if total_of_fix is not None and is_scalar_loss(self.model, loss, events, function):
+            fix = self._fix(value)
+        self._pending.append((node, fields, total_of_fix, fix))
+
+    def _total_of_fix(self, total: cst.BaseExpression,
+                      function: cst.FunctionDef | None) -> tuple[int, str] | None:
+        """(scope id, name) of a local running total of numbers that `.item()` may feed."""
+        if not isinstance(total, cst.Name) or any(
+                module.lstrip(".").split(".")[0] in NON_TORCH_TENSOR_PACKAGES
+                for module in self.model.names.imported_modules):
+            return None
+        if total.value not in number_totals(self.model, function):
+            return None
+        return id(self.model.scope_of(function)), total.value
+
+    def _fix(self, value: cst.BaseExpression) -> Fix | None:
+        """`value.item()` when `value` is the one-element loss, scaled by plain numbers."""
+        if isinstance(value, cst.Name):
+            return Fix(value, with_method_call(value, "item"))
+        if isinstance(value, cst.Call) and isinstance(value.func, cst.Attribute) and \
+                not value.args and value.func.attr.value in SCALAR_PRESERVING_METHODS and \
+                isinstance(value.func.value, cst.Name):
+            return Fix(value, with_method_call(value, "item"))
+        if isinstance(value, cst.BinaryOperation) and isinstance(
+                value.operator, (cst.Multiply, cst.Divide)):
+            sides = (value.left, value.right)
+            if any(isinstance(side, cst.Name) for side in sides) and all(
+                    isinstance(side, cst.Name) or _is_plain_number(side) for side in sides) \
+                    and not all(isinstance(side, cst.Name) for side in sides):
+                return Fix(value, with_method_call(value, "item"))
+        return None
+
+
+def _is_plain_number(expr: cst.BaseExpression) -> bool:
+    """A literal, `len(x)`, `x.size(0)` or `x.shape[0]`: a Python number, never a tensor."""
+    if isinstance(expr, (cst.Integer, cst.Float)):
+        return True
+    if isinstance(expr, cst.Call) and len(expr.args) <= 1:
+        func = expr.func
+        if isinstance(func, cst.Name) and func.value == "len":
+            return True
+        if isinstance(func, cst.Attribute) and func.attr.value == "size" and \
+                len(expr.args) == 1 and isinstance(expr.args[0].value, cst.Integer):
+            return True
+    if isinstance(expr, cst.Subscript) and isinstance(expr.value, cst.Attribute) and \
+            expr.value.attr.value == "shape" and len(expr.slice) == 1:
+        index = expr.slice[0].slice
+        return isinstance(index, cst.Index) and isinstance(index.value, cst.Integer)
+    return False

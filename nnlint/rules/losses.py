@@ -6,11 +6,12 @@ import libcst as cst
 from nnlint.analysis.api.losses import KERAS_EPSILON, Expects
 from nnlint.analysis.losses import (
     LossUse, class_count, double_sigmoid_range, double_softmax_ceiling, double_softmax_floor,
-    edits_layer_stacks, keras_clip_floor_loss, keras_compiled_loss, loss_of_call,
+    edits_layer_stacks, inline_normaliser_input, keras_clip_floor_loss, keras_compiled_loss,
+    loss_of_call,
 )
 from nnlint.analysis.values import Fact, Kind, call_result, fact_of
 from nnlint.finding import Severity
-from nnlint.rules.base import Rule, register
+from nnlint.rules.base import Fix, Rule, register
 
 _STATEMENTS = (cst.SimpleStatementLine, cst.SimpleStatementSuite, cst.BaseCompoundStatement)
 
@@ -71,6 +72,8 @@ class ProbabilitiesIntoLogitLoss(_LossRule):
            "loss = F.cross_entropy(probs, labels)")
     good = ("scores = head(features)\n"
             "loss = F.cross_entropy(scores, labels)")
+    rewrite = ("removes a softmax/sigmoid written inside the loss call when it is the loss's own "
+               "activation over the loss's class axis")
     references = (
         "PyTorch documentation, torch.nn.CrossEntropyLoss: 'The input is expected to contain "
         "the unnormalized logits for each class'",
@@ -92,8 +95,14 @@ class ProbabilitiesIntoLogitLoss(_LossRule):
             low, high = double_sigmoid_range()
             consequence = f"predictions stuck in [{low:.1f}, {high:.3f}]"
         fix = "drop the final activation" if use.prediction is None else "pass logits"
+        autofix = None
+        if isinstance(node, cst.Call) and use.prediction is not None:
+            logits = inline_normaliser_input(self.model, use, node)
+            if logits is not None:
+                autofix = Fix(use.prediction, logits)
         self.report(node, loss=use.label, activation=use.spec.activation, subject=subject,
-                    producer=fact.producer or "probability", consequence=consequence, fix=fix)
+                    producer=fact.producer or "probability", consequence=consequence, fix=fix,
+                    autofix=autofix)
 
 
 @register

@@ -112,6 +112,17 @@ DROPOUT_APIS: dict[str, DropoutApi] = {
                                 True),
 }
 
+#: functional dropout that takes its on/off switch as this keyword, so `nnlint fix` may pass
+#: `training=self.training`: inspect.signature of each under PyTorch 2.13 shows
+#: (input, p=0.5, training=True, inplace=False); alpha_dropout and feature_alpha_dropout
+#: take the same keyword with default False. torch.dropout(input, p, train) is not here:
+#: its switch `train` is required (a call without it raises TypeError), so never missing.
+MODE_KEYWORD_FUNCTIONS: dict[str, str] = {
+    f"torch.nn.functional.{name}": "training"
+    for name in ("dropout", "dropout1d", "dropout2d", "dropout3d", "alpha_dropout",
+                 "feature_alpha_dropout")
+}
+
 #: uniform random draws a hand-written mask compares with the keep probability
 UNIFORM_RANDOM_FUNCTIONS = frozenset({
     "numpy.random.rand", "numpy.random.random", "numpy.random.random_sample",

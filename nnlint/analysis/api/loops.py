@@ -45,3 +45,20 @@ GRAD_SWITCH_CONTEXT = "torch.set_grad_enabled"
 
 #: words in an unknown function's name that suggest it resets gradients itself
 RESET_WORDS = ("zero", "reset", "clear")
+
+#: packages whose tensors are not PyTorch's: a file importing one gets no `.item()` rewrite,
+#: since `loss` might be one of their values (common practice: TF eager tensors have no item)
+NON_TORCH_TENSOR_PACKAGES = frozenset({"tensorflow", "keras", "tf_keras", "jax", "flax",
+                                       "mxnet", "paddle"})
+#: builtins that read a total as a number and give back something that no longer is the
+#: tensor (print and str formatting, conversions, len): a total read only by these, by
+#: comparisons and by f-strings behaves the same as a Python float
+NUMBER_SINK_BUILTINS = frozenset({"print", "str", "repr", "format", "float", "int", "bool",
+                                  "len"})
+#: builtins whose result is a number when their argument is numbers (a float total or a
+#: list of floats): the read goes on through them to what uses their result
+NUMBER_REDUCING_BUILTINS = frozenset({"sum", "min", "max", "abs", "round"})
+#: no-argument tensor methods that keep a one-element loss one element (so `.item()` works)
+SCALAR_PRESERVING_METHODS = frozenset({"mean", "sum", "float", "double", "cpu", "clone"})
+#: objects whose `.backward(loss)` runs loss.backward() (Hugging Face Accelerate docs)
+BACKWARD_RUNNERS = frozenset({"accelerate.Accelerator"})

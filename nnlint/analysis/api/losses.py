@@ -138,3 +138,62 @@ CLASS_COUNT_ARGUMENTS: dict[str, tuple[int, str]] = {
 STACK_EDIT_METHODS = frozenset({"add", "append", "add_module", "insert", "extend"})
 #: canonical-name prefixes of layers, for recognising such an edit
 LAYER_PREFIXES = ("torch.nn.", "tensorflow.keras.layers.", "flax.linen.")
+
+
+@dataclass(frozen=True)
+class Normaliser:
+    """A softmax or sigmoid written inline, and how its arguments are spelled."""
+
+    #: "softmax" or "sigmoid"
+    activation: str
+    #: keyword names of the input
+    input_keywords: tuple[str, ...]
+    #: keyword of the class axis (None for the elementwise sigmoid)
+    axis_keyword: str | None
+    #: the axis used when none is passed; None when the framework guesses one from the rank
+    default_axis: int | None
+
+
+# Signatures checked with inspect under PyTorch 2.13: torch.nn.functional.softmax(input,
+# dim=None, _stacklevel=3, dtype=None), whose dim=None picks 0 or 1 from the rank (a
+# deprecated implicit choice, so unknown here); torch.softmax and torch.special.softmax
+# (input, dim, *, dtype=None); torch.sigmoid(input); torch.special.expit(input).
+# TensorFlow's tf.nn.softmax(logits, axis=None, name=None) normalises the last axis when
+# axis is None, keras.activations.softmax(x, axis=-1); tf.sigmoid(x, name=None) and
+# keras.activations.sigmoid(x) (TensorFlow 2.x and Keras 3 documentation, from memory).
+_TORCH_SOFTMAX = Normaliser("softmax", ("input",), "dim", None)
+_TORCH_SIGMOID = Normaliser("sigmoid", ("input",), None, None)
+_TF_SOFTMAX = Normaliser("softmax", ("logits", "x"), "axis", -1)
+_TF_SIGMOID = Normaliser("sigmoid", ("x",), None, None)
+#: inline softmax/sigmoid functions: canonical name -> how they are called
+INLINE_NORMALISERS: dict[str, Normaliser] = {
+    "torch.softmax": _TORCH_SOFTMAX,
+    "torch.nn.functional.softmax": _TORCH_SOFTMAX,
+    "torch.special.softmax": _TORCH_SOFTMAX,
+    "torch.sigmoid": _TORCH_SIGMOID,
+    "torch.nn.functional.sigmoid": _TORCH_SIGMOID,
+    "torch.special.expit": _TORCH_SIGMOID,
+    "tensorflow.nn.softmax": _TF_SOFTMAX,
+    "tensorflow.math.softmax": _TF_SOFTMAX,
+    "tensorflow.keras.activations.softmax": _TF_SOFTMAX,
+    "tensorflow.sigmoid": _TF_SIGMOID,
+    "tensorflow.nn.sigmoid": _TF_SIGMOID,
+    "tensorflow.math.sigmoid": _TF_SIGMOID,
+    "tensorflow.keras.activations.sigmoid": _TF_SIGMOID,
+}
+#: torch.nn modules built inline and applied at once (`nn.Softmax(dim=1)(scores)`):
+#: nn.Softmax(dim=None) and nn.Sigmoid() (inspect.signature, PyTorch 2.13)
+INLINE_NORMALISER_MODULES: dict[str, Normaliser] = {
+    "torch.nn.Softmax": _TORCH_SOFTMAX,
+    "torch.nn.Sigmoid": _TORCH_SIGMOID,
+}
+#: tensor methods: Tensor.softmax(dim, dtype=None) and Tensor.sigmoid() (PyTorch 2.13)
+INLINE_NORMALISER_METHODS: dict[str, Normaliser] = {
+    "softmax": Normaliser("softmax", (), "dim", None),
+    "sigmoid": _TORCH_SIGMOID,
+}
+#: the axis each logit loss normalises over, per framework: torch's cross-entropy takes the
+#: classes on dim 1 for every input of rank >= 2 ("Input: (C), (N, C) or (N, C, d1, ...)",
+#: torch.nn.CrossEntropyLoss docs), TensorFlow and Keras on the last axis unless `axis=`
+#: says otherwise (tf.nn.softmax_cross_entropy_with_logits, keras.losses docs)
+LOSS_CLASS_AXIS: dict[str, int] = {"torch": 1, "tensorflow": -1}
