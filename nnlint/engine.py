@@ -26,6 +26,7 @@ from nnlint.analysis.project import ProjectIndex, package_of
 from nnlint.analysis.walk import TRACKED_TYPES as _TRACKED_TYPES
 from nnlint.analysis.walk import WalkContext
 from nnlint.config import Settings, with_default_ignores
+from nnlint.edits import edits_of
 from nnlint.files import DecodeError, decode, discover, split_lines
 from nnlint.finding import Finding
 from nnlint.parsing import ParseFailure, parse
@@ -247,9 +248,11 @@ def _place(reports: list[Report], module: cst.Module, path: str
         if key in seen:
             continue
         seen.add(key)
+        edits = (edits_of(report.fix, module, positions)
+                 if report.fix is not None and positions is not None else ())
         findings.append((Finding(path, None, line, column, report.rule.code, report.rule.name,
                                  report.severity, report.message, end_line, end_column,
-                                 fixable=report.fix is not None), report.fix))
+                                 fixable=report.fix is not None, edits=edits), report.fix))
     return findings
 
 

@@ -2,7 +2,8 @@
 from __future__ import annotations
 
 import enum
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import NamedTuple
 
 
 class Severity(str, enum.Enum):
@@ -12,6 +13,19 @@ class Severity(str, enum.Enum):
     ERROR = "error"
     #: likely wrong; context may justify it
     WARNING = "warning"
+
+
+class Edit(NamedTuple):
+    """Replace the text from (line, column) up to, not including, (end_line, end_column).
+
+    Lines and columns are 1-based; an empty region (start == end) is an insertion.
+    """
+
+    line: int
+    column: int
+    end_line: int
+    end_column: int
+    text: str
 
 
 @dataclass(frozen=True, order=True)
@@ -31,6 +45,9 @@ class Finding:
     end_column: int | None = None
     #: True when `nnlint fix` has a rewrite for this finding
     fixable: bool = False
+    #: the fix as text edits of the file (of the cell, in a notebook); () when there is none
+    #: or it cannot be expressed there (SARIF `fixes`)
+    edits: tuple[Edit, ...] = field(default=(), compare=False)
 
     def sort_key(self) -> tuple:
         cell = -1 if self.cell is None else self.cell

@@ -18,6 +18,7 @@ import libcst as cst
 
 from nnlint.analysis.project import ProjectIndex, content_hash
 from nnlint.config import Settings
+from nnlint.edits import with_imports
 from nnlint.engine import analyse_module, lint_text, read_source
 from nnlint.files import DecodeError, decode
 from nnlint.finding import Finding
@@ -75,45 +76,6 @@ def _non_overlapping(fixes: list[Fix]) -> list[Fix]:
     return chosen
 
 
-def _is_import(statement: cst.CSTNode) -> bool:
-    return isinstance(statement, cst.SimpleStatementLine) and any(
-        isinstance(small, (cst.Import, cst.ImportFrom)) for small in statement.body)
-
-
-def _with_imports(module: cst.Module, imports: list[str]) -> cst.Module:
-    """`module` with each import statement it lacks added after its last top-level import.
-
-    Only the imports before the first function or class count as the module's import block,
-    so an added import never lands between definitions; with none, it goes after the
-    docstring (or first).
-    """
-    present = {module.code_for_node(statement.with_changes(leading_lines=())).strip()
-               for statement in module.body if _is_import(statement)}
-    wanted = []
-    for text in imports:
-        statement = cst.parse_statement(text)
-        code = module.code_for_node(statement).strip()
-        if code not in present:
-            present.add(code)
-            wanted.append(statement)
-    if not wanted:
-        return module
-    body = list(module.body)
-    position = 0
-    for index, statement in enumerate(body):
-        if isinstance(statement, (cst.FunctionDef, cst.ClassDef)):
-            break
-        if _is_import(statement) or (index == 0 and _is_docstring(statement)):
-            position = index + 1
-    return module.with_changes(body=body[:position] + wanted + body[position:])
-
-
-def _is_docstring(statement: cst.CSTNode) -> bool:
-    return (isinstance(statement, cst.SimpleStatementLine) and len(statement.body) == 1
-            and isinstance(statement.body[0], cst.Expr)
-            and isinstance(statement.body[0].value, (cst.SimpleString, cst.ConcatenatedString)))
-
-
 def fix_text(text: str, path: str, settings: Settings, project: ProjectIndex | None = None
              ) -> tuple[str, list[Finding], list[Finding]]:
     """(fixed text, findings fixed, findings remaining) for one file's text."""
@@ -132,7 +94,7 @@ def fix_text(text: str, path: str, settings: Settings, project: ProjectIndex | N
                                                for fix in fixes}))
         imports = [text for fix in fixes for text in fix.imports]
         if imports:
-            fixed_module = _with_imports(fixed_module, imports)
+            fixed_module = with_imports(fixed_module, imports)
         rewritten = fixed_module.code
         try:
             parse(rewritten)

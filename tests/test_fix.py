@@ -167,7 +167,32 @@ def test_rules_declare_their_rewrite_exactly_when_their_findings_are_fixable():
 def test_imports_a_fix_needs_are_added_once_after_the_import_block(source, expected):
     import libcst as cst
 
-    from nnlint.fix import _with_imports
+    from nnlint.edits import with_imports
 
     imports = ["import torch.nn.functional as F", "import torch.nn.functional as F"]
-    assert _with_imports(cst.parse_module(source), imports).code == expected
+    assert with_imports(cst.parse_module(source), imports).code == expected
+
+
+@pytest.mark.parametrize("source", [
+    '"""Doc."""\nimport torch  # framework\n\nscores = torch.log(torch.sigmoid(x))\n',
+    "import torch\nimport torch.nn.functional as F\nscores = torch.log(torch.sigmoid(x))\n",
+    "import torch\n\n\ndef score(x):\n    return torch.log(\n        torch.sigmoid(x))\n",
+])
+def test_text_edits_of_a_fix_make_the_same_text_as_the_tree_rewrite(source):
+    # SARIF carries fixes as text edits; applied, they must give what `nnlint fix` writes
+    import libcst as cst
+    from libcst.metadata import MetadataWrapper, PositionProvider
+
+    from nnlint.edits import apply_edits, edits_of, with_imports
+    from nnlint.fix import _Replacer
+    from nnlint.rules.base import Fix
+
+    module = cst.parse_module(source)
+    positions = MetadataWrapper(module, unsafe_skip_copy=True).resolve(PositionProvider)
+    target = next(node for node in positions if isinstance(node, cst.Call)
+                  and module.code_for_node(node.func) == "torch.log")
+    fix = Fix(target, cst.parse_expression("F.logsigmoid(x)"),
+              imports=("import torch.nn.functional as F",))
+    tree = with_imports(module.visit(_Replacer({id(target): fix.replacement})), list(fix.imports))
+    assert apply_edits(source, edits_of(fix, module, positions)) == tree.code
+    assert "F.logsigmoid(x)" in tree.code and tree.code.count("import torch.nn.functional") == 1
