@@ -197,8 +197,6 @@ def _fix(arguments: argparse.Namespace) -> int:
     remaining = []
     for path in discover([p for p in arguments.paths if os.path.lexists(p)], settings.exclude,
                          settings.root):
-        if path.endswith(".ipynb"):
-            continue  # notebooks are checked, not rewritten (see README)
         result = fix_file(path, settings, project, write=not arguments.diff)
         messages += result.messages
         remaining += result.remaining

@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 
 import libcst as cst
 
+from nnlint import notebooks
 from nnlint.analysis.project import ProjectIndex, content_hash
 from nnlint.config import Settings
 from nnlint.edits import with_imports
@@ -122,6 +123,8 @@ def fix_file(path: str, settings: Settings, project: ProjectIndex | None = None,
     if isinstance(data, int):
         result.messages.append(f"nnlint: {path}: too large to fix; skipped")
         return result
+    if notebooks.is_notebook(path):
+        return _fix_notebook(result, data, settings, project, write)
     try:
         text = decode(data)
     except DecodeError as error:
@@ -131,11 +134,49 @@ def fix_file(path: str, settings: Settings, project: ProjectIndex | None = None,
     fixed, result.applied, result.remaining = fix_text(text, path, settings, project)
     result.fixed = fixed
     if write and result.changed:
-        message = write_atomically(path, data, fixed)
-        if message is not None:
-            result.messages.append(message)
-            result.fixed = result.original
-            result.applied = []
+        _write_back(result, data)
+    return result
+
+
+def _write_back(result: FixResult, data: bytes) -> None:
+    """Write the fixed text over `data`; on refusal, record why and that nothing changed."""
+    message = write_atomically(result.path, data, result.fixed)
+    if message is not None:
+        result.messages.append(message)
+        result.fixed = result.original
+        result.applied = []
+
+
+def _fix_notebook(result: FixResult, data: bytes, settings: Settings,
+                  project: ProjectIndex | None, write: bool) -> FixResult:
+    """Fix a notebook's code cells as one program and put the changed lines back in them."""
+    path = result.path
+    try:
+        program = notebooks.read_program(data)
+    except notebooks.NotebookError as error:
+        result.messages.append(f"nnlint: {path}: {error.message}; not fixed")
+        return result
+    except notebooks.NotPythonNotebook:
+        return result  # nothing nnlint checks, so nothing to fix
+    if program.has_open_cell and program.first_broken_cell() is not None:
+        # a cell that does not compile on its own: check reports it; nothing is rewritten
+        result.remaining = notebooks.check_notebook(path, data, settings, project).findings
+        return result
+    fixed, applied, remaining = fix_text(program.text, path, settings, project)
+    result.applied = [program.place(finding) for finding in applied]
+    result.remaining = [program.place(finding) for finding in remaining]
+    result.original = result.fixed = data.decode("utf-8-sig")
+    if fixed == program.text:
+        return result
+    try:
+        result.fixed = notebooks.rewrite_cells(data, program, fixed)
+    except notebooks.NotebookError as error:
+        result.messages.append(f"nnlint: {path}: {error.message}; not fixed")
+        result.remaining = notebooks.check_notebook(path, data, settings, project).findings
+        result.applied = []
+        return result
+    if write:
+        _write_back(result, data)
     return result
 
 
