@@ -70,6 +70,16 @@ def with_imports(module: cst.Module, imports: list[str]) -> cst.Module:
     return module.with_changes(body=body[:position] + wanted + body[position:])
 
 
+def fix_anchors(fix: "Fix", module: cst.Module) -> list[cst.CSTNode]:
+    """The nodes whose positions `edits_of` reads: the target, and where imports go."""
+    anchors: list[cst.CSTNode] = [fix.target]
+    if fix.imports:
+        position = import_position(module)
+        if position:
+            anchors.append(module.body[position - 1])
+    return anchors
+
+
 def edits_of(fix: "Fix", module: cst.Module, positions: Mapping[cst.CSTNode, "CodeRange"]
              ) -> tuple[Edit, ...]:
     """The fix as text edits of the module's source (replacement first, then imports)."""

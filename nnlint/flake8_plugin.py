@@ -80,7 +80,7 @@ class Plugin:
             yield finding.line, finding.column - 1, f"{finding.code} {finding.message}", type(self)
 
     def _findings(self):
-        from nnlint.engine import PARSE_ERROR, lint_text
+        from nnlint.engine import PARSE_ERROR, collector_tuned_for_trees, lint_text
 
         if self._filename.endswith(".ipynb"):
             return []  # notebook JSON is not Python; `nnlint check` reads notebooks itself
@@ -90,7 +90,8 @@ class Plugin:
         if self.precision is not None:
             settings = replace(settings, precision=self.precision)
         text = "".join(self._lines)
-        result = lint_text(text, self._filename, settings, _project(), apply_noqa=False)
+        with collector_tuned_for_trees():  # restored before flake8 goes on
+            result = lint_text(text, self._filename, settings, _project(), apply_noqa=False)
         for error in result.errors:
             LOG.warning("%s", error.describe())
         return [finding for finding in result.findings if finding.code != PARSE_ERROR]
