@@ -3,7 +3,10 @@ from __future__ import annotations
 
 import enum
 from dataclasses import dataclass, field
-from typing import NamedTuple
+from typing import TYPE_CHECKING, NamedTuple
+
+if TYPE_CHECKING:
+    from nnlint.rules.base import Fix
 
 
 class Severity(str, enum.Enum):
@@ -68,3 +71,29 @@ class Finding:
             "cell": self.cell,
             "fix": self.fixable,
         }
+
+
+@dataclass
+class InternalError:
+    """A bug of ours, caught while checking one file with one rule."""
+
+    path: str
+    code: str
+    detail: str
+
+    def describe(self) -> str:
+        return f"nnlint: internal error in {self.code} on {self.path}: {self.detail}"
+
+
+@dataclass
+class FileResult:
+    path: str
+    findings: list[Finding] = field(default_factory=list)
+    errors: list[InternalError] = field(default_factory=list)
+    #: one-line messages for the user (unreadable file, ...), shown on stderr
+    messages: list[str] = field(default_factory=list)
+    #: (finding, rewrite) pairs; only filled for `nnlint fix` (CST nodes stay in-process)
+    fixes: list[tuple[Finding, "Fix"]] = field(default_factory=list)
+    #: one-line notices on stderr that do not change the exit status (a notebook of
+    #: another language, skipped as a folder's non-Python files are)
+    notes: list[str] = field(default_factory=list)

@@ -20,8 +20,8 @@ from nnlint import notebooks
 from nnlint.analysis.project import ProjectIndex, content_hash
 from nnlint.config import Settings
 from nnlint.edits import with_imports
-from nnlint.engine import analyse_module, lint_text, read_source
-from nnlint.files import DecodeError, decode
+from nnlint.engine import analyse_module, lint_text
+from nnlint.files import DecodeError, decode, read_source
 from nnlint.finding import Finding
 from nnlint.parsing import ParseFailure, parse
 from nnlint.rules.base import Fix

@@ -80,7 +80,8 @@ class Plugin:
             yield finding.line, finding.column - 1, f"{finding.code} {finding.message}", type(self)
 
     def _findings(self):
-        from nnlint.engine import PARSE_ERROR, collector_tuned_for_trees, lint_text
+        from nnlint.engine import PARSE_ERROR, lint_text
+        from nnlint.runner import collector_tuned_for_trees
 
         if self._filename.endswith(".ipynb"):
             return []  # notebook JSON is not Python; `nnlint check` reads notebooks itself

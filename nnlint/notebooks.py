@@ -25,7 +25,7 @@ from nnlint.finding import Finding
 if TYPE_CHECKING:
     from nnlint.analysis.project import ProjectIndex
     from nnlint.config import Settings
-    from nnlint.engine import FileResult
+    from nnlint.finding import FileResult
 
 NOTEBOOK_SUFFIX = ".ipynb"
 #: a notebook carries its outputs (base64 plots, tables), so it may be far larger than a .py
