@@ -38,15 +38,26 @@ def child_fields(node_type: type) -> tuple[str, ...]:
     return fields
 
 
+#: type -> is it a libcst node type (filled on first sight of each type)
+NODE_KINDS: dict[type, bool] = {}
+
+
+def is_node_kind(kind: type) -> bool:
+    known = NODE_KINDS.get(kind)
+    if known is None:
+        known = NODE_KINDS[kind] = issubclass(kind, cst.CSTNode)
+    return known
+
+
 def children(node: cst.CSTNode) -> list[cst.CSTNode]:
     """The node's meaningful children in source order (what the engine's walk visits)."""
     found: list[cst.CSTNode] = []
     for name in child_fields(type(node)):
         value = getattr(node, name)
-        if isinstance(value, cst.CSTNode):
+        if type(value) in (tuple, list):
+            found.extend(item for item in value if is_node_kind(type(item)))
+        elif is_node_kind(type(value)):
             found.append(value)
-        elif type(value) in (tuple, list):
-            found.extend(item for item in value if isinstance(item, cst.CSTNode))
     return found
 
 
