@@ -29,13 +29,16 @@ Rewrite = tuple[cst.CSTNode, cst.CSTNode, tuple[str, ...]]
 
 
 # -- spelling a canonical name with the file's imports ------------------------------------------
-def _top_level_imports(model: "ModuleModel") -> list[str]:
-    """Local names bound by the module's own top-level imports (not imports inside functions,
-    which the flow-insensitive name table also resolves but which are out of scope elsewhere).
+def _top_level_imports(model: "ModuleModel") -> list[tuple[str, str]]:
+    """(local name, module it makes reachable) for the module's own top-level imports.
+
+    Imports inside functions are left out: the flow-insensitive name table resolves them
+    everywhere, but they are out of scope elsewhere. `import a.b` gives ("a", "a.b") as
+    well as ("a", "a"): the submodule is loaded and reachable as `a.b`.
     """
     memo = model.memo.setdefault(_MEMO, {})
     if "names" not in memo:
-        names: list[str] = []
+        names: list[tuple[str, str]] = []
         for statement in model.module.body:
             if not isinstance(statement, cst.SimpleStatementLine):
                 continue
@@ -45,19 +48,20 @@ def _top_level_imports(model: "ModuleModel") -> list[str]:
     return memo["names"]
 
 
-def _bound_names(small: cst.BaseSmallStatement) -> list[str]:
+def _bound_names(small: cst.BaseSmallStatement) -> list[tuple[str, str]]:
     if isinstance(small, cst.Import):
         found = []
         for alias in small.names:
+            module = dotted_name(alias.name) or ""
             if alias.asname is not None and isinstance(alias.asname.name, cst.Name):
-                found.append(alias.asname.name.value)
+                found.append((alias.asname.name.value, ""))
             else:
-                found.append((dotted_name(alias.name) or "").split(".")[0])
+                found.append((module.split(".")[0], module))
         return found
     if isinstance(small, cst.ImportFrom) and not small.relative and \
             not isinstance(small.names, cst.ImportStar):
-        return [alias.asname.name.value if alias.asname is not None
-                and isinstance(alias.asname.name, cst.Name) else alias.name.value
+        return [(alias.asname.name.value if alias.asname is not None
+                 and isinstance(alias.asname.name, cst.Name) else alias.name.value, "")
                 for alias in small.names if isinstance(alias.name, cst.Name)]
     return []
 
@@ -79,8 +83,9 @@ def _prefixes(expr: cst.BaseExpression):
 
 def _is_free(model: "ModuleModel", name: str) -> bool:
     """No bare use of `name` anywhere in the file (an added import must not shadow anything);
-    `name.x` after an import of `name.x` is not a use of another `name`."""
-    return re.search(rf"(?<![\w.]){re.escape(name)}(?![\w])(?!\s*\.)", model.source) is None
+    `import name.x` and `from name import x` do not bind `name` to anything else."""
+    pattern = rf"(?<![\w.])(?<!from ){re.escape(name)}(?![\w])(?!\s*\.)"
+    return re.search(pattern, model.source) is None
 
 
 def spell(model: "ModuleModel", canonical: str, sites: tuple[cst.BaseExpression, ...],
@@ -108,10 +113,14 @@ def spell(model: "ModuleModel", canonical: str, sites: tuple[cst.BaseExpression,
     for site in sites:
         for prefix in _prefixes(site):
             consider(prefix, model.canonical(prefix))
-    for local in _top_level_imports(model):
+    for local, loaded in _top_level_imports(model):
         candidates = model.names.candidates(local)
-        if len(candidates) == 1 and model.lookup(local, scope) is None:
-            consider(cst.Name(local), next(iter(candidates)))
+        if len(candidates) != 1 or model.lookup(local, scope) is not None:
+            continue
+        meaning = next(iter(candidates))
+        consider(cst.Name(local), meaning)
+        if loaded.startswith(meaning + "."):  # `import scipy.special` reaches scipy.special
+            consider(_attributes(cst.Name(local), loaded[len(meaning) + 1:]), loaded)
     if best is not None:
         return best[1], ()
     if not may_import:
