@@ -17,7 +17,6 @@ import libcst as cst
 
 from nnlint.analysis.api import stable_forms as api
 from nnlint.analysis.names import dotted_name
-from nnlint.analysis.values import positional_argument
 
 if TYPE_CHECKING:
     from nnlint.analysis.model import ModuleModel, Scope
@@ -296,10 +295,9 @@ def _sum_call(model: "ModuleModel", expr: cst.BaseExpression):
         if len(names) != 1:
             return None
         kind = next(iter(names))
-        operand = positional_argument(expr, 0)
-        if operand is None or args[0].keyword is not None:
-            return None
-        args = args[1:]
+        if not args or args[0].keyword is not None or args[0].star:
+            return None  # the operand must be written first, as itself
+        operand, args = args[0].value, args[1:]
         func = expr.func
     elif isinstance(expr.func, cst.Attribute) and expr.func.attr.value == "sum":
         kind, operand, func = "method", expr.func.value, None
