@@ -72,6 +72,9 @@ REWRITES = [
      "y = torch.logsumexp(s, dim=(0, 1))\n"),
     (TF, "y = tf.math.log(tf.reduce_sum(tf.exp(s), 1, True))\n",
      "y = tf.math.reduce_logsumexp(s, 1, True)\n"),
+    # an axis of None is dropped (the default), so a positional keep-dims becomes a keyword
+    (TF, "y = tf.math.log(tf.reduce_sum(tf.exp(s), None, True))\n",
+     "y = tf.math.reduce_logsumexp(s, keepdims=True)\n"),
     (JAX, "y = jnp.log(jnp.sum(jnp.exp(s), axis=-1, keepdims=True))\n",
      "y = jax.nn.logsumexp(s, axis=-1, keepdims=True)\n"),
     ("import numpy as np\nimport scipy.special\n", "y = np.log(np.exp(s).sum())\n",

@@ -387,8 +387,8 @@ def _is_pure(expr: cst.BaseExpression, depth: int = 0) -> bool:
     return False
 
 
-def _stable_call(model, stable: api.Stable, family: str, inner: cst.BaseExpression,
-                 exp_func, sites, passed: list[cst.Arg], scope, method: bool):
+def _stable_call(model, stable: api.Stable, family: str, inner: cst.BaseExpression, sites,
+                 passed: list[cst.Arg], scope, method: bool):
     """`stable(inner, *passed)` spelled for the file, or `inner.method(*passed)` for torch."""
     if method and stable.method is not None:
         return cst.Call(func=cst.Attribute(value=inner, attr=cst.Name(stable.method)),
@@ -400,25 +400,27 @@ def _stable_call(model, stable: api.Stable, family: str, inner: cst.BaseExpressi
     return cst.Call(func=spelled[0], args=[cst.Arg(inner), *passed]), spelled[1]
 
 
-def _passed(roles: dict[str, cst.Arg], order: tuple[str, ...], stable: api.Stable
-            ) -> list[cst.Arg]:
-    """The sum's axis / keep arguments for the stable function: positional ones stay
-    positional (both take them in the same order), keywords get the stable function's name."""
+def _keyword(name: str, value: cst.BaseExpression) -> cst.Arg:
+    tight = cst.AssignEqual(cst.SimpleWhitespace(""), cst.SimpleWhitespace(""))
+    return cst.Arg(value, keyword=cst.Name(name), equal=tight)
+
+
+def _passed(roles: dict[str, cst.Arg], stable: api.Stable) -> list[cst.Arg]:
+    """The sum's axis / keep arguments for the stable function. Every SumForm takes them in
+    the stable function's order (axis, then keep), so positional ones stay positional until
+    one is left out (an axis of None dropped); after that they become keywords, named as the
+    stable function names them."""
     names = {"axis": stable.axis, "keep": stable.keep}
-    passed = []
-    for role in order:
+    passed: list[cst.Arg] = []
+    in_order = True
+    for role in ("axis", "keep"):
         arg = roles.get(role)
         if arg is None:
-            continue
-        if arg.keyword is None:
+            in_order = False
+        elif arg.keyword is None and in_order:
             passed.append(cst.Arg(arg.value))
         else:
-            passed.append(cst.Arg(arg.value, keyword=cst.Name(names[role]),
-                                  equal=cst.AssignEqual(cst.SimpleWhitespace(""),
-                                                        cst.SimpleWhitespace(""))))
-    for index, arg in enumerate(passed[1:], 1):
-        if arg.keyword is None and passed[index - 1].keyword is not None:
-            return []  # a positional after a keyword: cannot be carried over as is
+            passed.append(_keyword(names[role], arg.value))
     return passed
 
 
@@ -440,15 +442,13 @@ def softmax_fix(model: "ModuleModel", division: cst.BinaryOperation, scope: "Sco
     if _is_none(axis):
         if stable.all_axes is None:
             return None
-        passed = [] if not stable.all_axes else [cst.Arg(
-            cst.Name(stable.all_axes), keyword=cst.Name(stable.axis),
-            equal=cst.AssignEqual(cst.SimpleWhitespace(""), cst.SimpleWhitespace("")))]
+        passed = [_keyword(stable.axis, cst.Name(stable.all_axes))] if stable.all_axes else []
     elif _is_true(roles.get("keep")) and _plain_axis(axis, tuples=False):
-        passed = _passed({"axis": axis}, ("axis",), stable)
+        passed = _passed({"axis": axis}, stable)
     else:
         return None  # without keepdims the quotient broadcasts differently from softmax
-    built = _stable_call(model, stable, family, inner, exp_func, (exp_func, sum_func),
-                         passed, scope, method=exp_func is None)
+    built = _stable_call(model, stable, family, inner, (exp_func, sum_func), passed, scope,
+                         method=exp_func is None)
     if built is None:
         return None
     return division, _framed(built[0], division), built[1]
@@ -474,11 +474,8 @@ def logsumexp_fix(model: "ModuleModel", log_call: cst.Call, scope: "Scope") -> R
         roles = {role: arg for role, arg in roles.items() if role != "axis"}
     elif not _plain_axis(axis, tuples=True):
         return None
-    passed = _passed(roles, ("axis", "keep"), stable)
-    if roles and not passed:
-        return None
-    built = _stable_call(model, stable, family, inner, exp_func,
-                         (exp_func, sum_func, log_call.func), passed, scope,
+    built = _stable_call(model, stable, family, inner, (exp_func, sum_func, log_call.func),
+                         _passed(roles, stable), scope,
                          method=exp_func is None and sum_func is None)
     if built is None:
         return None
