@@ -112,11 +112,26 @@ def test_each_fix_removes_its_finding_and_adds_none(tmp_path, fixture):
     before_unfixable = [(f.code, f.message) for f in before if not f.fixable]
     assert sorted((f.code, f.message) for f in after) == sorted(before_unfixable)
     original_lines = fixture.read_text().splitlines()
-    fixed_lines = copy.read_text().splitlines()
+    fixed_lines = _without_added_imports(original_lines, copy.read_text().splitlines())
     assert len(original_lines) == len(fixed_lines)
     changed = {number for number, (old, new) in enumerate(zip(original_lines, fixed_lines), 1)
                if old != new}
     assert changed == {f.line for f in before if f.fixable}
+
+
+def _without_added_imports(original_lines, fixed_lines):
+    """`fixed_lines` less the import lines a fix added (Fix.imports), so the rest lines up.
+
+    An added import is a new top-level `import`/`from` line placed right after the original
+    ones or the docstring: lines before it are unchanged, so removing it restores numbering.
+    """
+    added = [index for index, line in enumerate(fixed_lines)
+             if line.startswith(("import ", "from ")) and line not in original_lines]
+    if added:
+        first = added[0]
+        assert fixed_lines[:first] == original_lines[:first]  # nothing above them moved
+        assert added == list(range(first, first + len(added)))  # one block
+    return [line for index, line in enumerate(fixed_lines) if index not in added]
 
 
 def test_fixing_a_copy_of_the_demo_leaves_only_unfixable_findings(tmp_path):
