@@ -17,7 +17,7 @@ def lint_source(source: str, path: str = "<string>", settings=None):
 
 def lint_paths(paths, settings=None):
     """Lint files and folders; return (findings, files_checked)."""
-    from nnlint.engine import run_paths
+    from nnlint.runner import run_paths
 
     report = run_paths(list(paths), settings)
     return report.findings

@@ -18,7 +18,7 @@ from pathlib import Path
 
 from nnlint import __version__
 from nnlint.analysis.project import content_hash
-from nnlint.finding import Finding, Severity
+from nnlint.finding import Edit, Finding, Severity
 
 FOLDER_NAME = ".nnlint_cache"
 _FORMAT = "1"
@@ -124,10 +124,13 @@ def _atomic_write(folder: Path, name: str, text: str) -> None:
 def _record(finding: Finding) -> dict:
     data = finding.to_json()
     data.pop("path")
+    if finding.edits:
+        data["edits"] = [list(edit) for edit in finding.edits]
     return data
 
 
 def _finding(path: str, data: dict) -> Finding:
     return Finding(path, data["cell"], data["line"], data["column"], data["code"], data["name"],
                    Severity(data["severity"]), data["message"], data["end_line"],
-                   data["end_column"], data["fix"])
+                   data["end_column"], data["fix"],
+                   tuple(Edit(*edit) for edit in data.get("edits", ())))

@@ -7,12 +7,14 @@ import json
 import os
 import sys
 import time
-from typing import Sequence
+from typing import TYPE_CHECKING, Sequence
 
 from nnlint import __version__
 from nnlint.cache import FOLDER_NAME
 from nnlint.config import ConfigError, PRECISIONS, Settings, load, override
-from nnlint.rules.base import Rule, all_rules
+
+if TYPE_CHECKING:
+    from nnlint.rules.base import Rule
 
 EXIT_CLEAN, EXIT_FINDINGS, EXIT_ERROR = 0, 1, 2
 FORMATS = ("text", "json")
@@ -110,7 +112,7 @@ def _settings(arguments: argparse.Namespace) -> Settings:
 
 
 def _check(arguments: argparse.Namespace) -> int:
-    from nnlint.engine import run_paths
+    from nnlint.runner import run_paths
     from nnlint.report import json as json_report
     from nnlint.report import text as text_report
 
@@ -197,8 +199,6 @@ def _fix(arguments: argparse.Namespace) -> int:
     remaining = []
     for path in discover([p for p in arguments.paths if os.path.lexists(p)], settings.exclude,
                          settings.root):
-        if path.endswith(".ipynb"):
-            continue  # notebooks are checked, not rewritten (see README)
         result = fix_file(path, settings, project, write=not arguments.diff)
         messages += result.messages
         remaining += result.remaining
@@ -230,6 +230,8 @@ def _is_terminal(stream) -> bool:
 
 
 def _rules(output_format: str) -> int:
+    from nnlint.rules.base import all_rules
+
     rules = [rule for rule in all_rules() if not rule.retired]
     if output_format == "json":
         catalogue = [{"code": rule.code, "name": rule.name, "severity": rule.severity.value,
@@ -244,8 +246,10 @@ def _rules(output_format: str) -> int:
 
 
 def _explain(wanted: str) -> int:
+    from nnlint.rules.base import all_rules
+
     rules = all_rules()
-    by_key: dict[str, type[Rule]] = {}
+    by_key: dict[str, type["Rule"]] = {}
     for rule in rules:
         by_key[rule.code] = rule
         by_key[rule.name] = rule

@@ -10,6 +10,7 @@ import os
 import re
 import sys
 from dataclasses import dataclass, field, replace
+from functools import lru_cache
 from pathlib import Path
 from typing import Any, Iterable
 
@@ -45,15 +46,18 @@ class Settings:
     #: the folder globs are relative to (the config file's folder, else the working folder)
     root: str = "."
     config_file: str | None = None
-    #: codes of rules that are off unless selected explicitly
-    default_ignore: tuple[str, ...] = field(default=())
+    #: codes of rules that are off unless selected explicitly; None: the rule registry's
+    #: (looked up when first needed, so a fully cached run never imports the rules)
+    default_ignore: tuple[str, ...] | None = field(default=())
 
     def is_selected(self, code: str) -> bool:
         """flake8's decision for `code` given select and ignore."""
         explicit_select = code.startswith(self.select) if self.select else False
         implicit_select = code.startswith(DEFAULT_SELECT) if not self.select else False
+        default_ignore = (self.default_ignore if self.default_ignore is not None
+                          else registry_default_ignore())
         explicit_ignore = code.startswith(self.ignore) if self.ignore else False
-        implicit_ignore = code.startswith(self.default_ignore) if self.default_ignore else False
+        implicit_ignore = code.startswith(default_ignore) if default_ignore else False
         selected = explicit_select or implicit_select
         ignored = explicit_ignore or implicit_ignore
         if not ignored:
@@ -65,7 +69,7 @@ class Settings:
         if explicit_ignore and not explicit_select:
             return False
         select_list = self.select or DEFAULT_SELECT
-        ignore_list = self.ignore if explicit_ignore else self.default_ignore
+        ignore_list = self.ignore if explicit_ignore else default_ignore
         longest_select = max(len(prefix) for prefix in select_list if code.startswith(prefix))
         longest_ignore = max(len(prefix) for prefix in ignore_list if code.startswith(prefix))
         return longest_select > longest_ignore
@@ -220,7 +224,16 @@ def override(settings: Settings, select: str | None = None, ignore: str | None =
 
 
 def with_default_ignores(settings: Settings) -> Settings:
+    """`settings` with the rules that are off by default (or retired) ignored unless selected.
+
+    The codes are looked up in the registry on first use; the cache key names them as
+    "the registry's", which the cache's code fingerprint covers.
+    """
+    return replace(settings, default_ignore=None)
+
+
+@lru_cache(maxsize=1)
+def registry_default_ignore() -> tuple[str, ...]:
     from nnlint.rules.base import all_rules
 
-    off = tuple(rule.code for rule in all_rules() if not rule.enabled_by_default or rule.retired)
-    return replace(settings, default_ignore=off)
+    return tuple(rule.code for rule in all_rules() if not rule.enabled_by_default or rule.retired)

@@ -6,29 +6,25 @@ other rules' findings are kept. NNLINT_STRICT=1 (set by the tests) makes such bu
 """
 from __future__ import annotations
 
-import dataclasses
 import os
 import re
-import stat
 import traceback
-from concurrent.futures import ProcessPoolExecutor
-from dataclasses import dataclass, field
-from typing import Callable, Iterable, Sequence
+from typing import Callable, Sequence
 
 import libcst as cst
-from libcst.metadata import MetadataWrapper, PositionProvider
 
 from nnlint import noqa, notebooks
-from nnlint.cache import ResultCache
 from nnlint.analysis.api import FRAMEWORK_PACKAGES
 from nnlint.analysis.model import ModuleModel
 from nnlint.analysis.project import ProjectIndex, package_of
 from nnlint.analysis.walk import TRACKED_TYPES as _TRACKED_TYPES
-from nnlint.analysis.walk import WalkContext
+from nnlint.analysis.walk import NODE_KINDS, WalkContext, child_fields, is_node_kind
 from nnlint.config import Settings, with_default_ignores
-from nnlint.files import DecodeError, decode, discover, split_lines
-from nnlint.finding import Finding
+from nnlint.edits import edits_of, fix_anchors
+from nnlint.files import MAX_FILE_BYTES, DecodeError, decode, read_source, split_lines
+from nnlint.finding import FileResult, Finding, InternalError
 from nnlint.parsing import ParseFailure, parse
+from nnlint.positions import positions_of
 from nnlint.rules.base import Fix, Report, Rule, all_rules, get_rule
 
 PARSE_ERROR = "NNL001"
@@ -49,56 +45,6 @@ def wants_analysis(text: str) -> bool:
 
 def is_strict() -> bool:
     return os.environ.get("NNLINT_STRICT", "") not in ("", "0")
-
-
-@dataclass
-class InternalError:
-    """A bug of ours, caught while checking one file with one rule."""
-
-    path: str
-    code: str
-    detail: str
-
-    def describe(self) -> str:
-        return f"nnlint: internal error in {self.code} on {self.path}: {self.detail}"
-
-
-@dataclass
-class FileResult:
-    path: str
-    findings: list[Finding] = field(default_factory=list)
-    errors: list[InternalError] = field(default_factory=list)
-    #: one-line messages for the user (unreadable file, ...), shown on stderr
-    messages: list[str] = field(default_factory=list)
-    #: (finding, rewrite) pairs; only filled for `nnlint fix` (CST nodes stay in-process)
-    fixes: list[tuple[Finding, Fix]] = field(default_factory=list)
-    #: one-line notices on stderr that do not change the exit status (a notebook of
-    #: another language, skipped as a folder's non-Python files are)
-    notes: list[str] = field(default_factory=list)
-
-
-#: node fields that hold only layout (whitespace, brackets, separators): never walked
-_LAYOUT_FIELDS = frozenset({
-    "lpar", "rpar", "comma", "semicolon", "colon", "first_colon", "second_colon", "equal",
-    "dot", "leading_lines", "lines_after_decorators", "header", "footer", "indent",
-    "trailing_whitespace", "encoding", "default_indent", "default_newline",
-    "has_trailing_newline", "relative", "lbracket", "rbracket", "lbrace", "rbrace",
-    "asynchronous", "star", "conversion", "newline", "lsqb", "rsqb",
-})
-_CHILD_FIELDS: dict[type, tuple[str, ...]] = {}
-
-
-def _child_fields(node_type: type) -> tuple[str, ...]:
-    """The fields of a node type that can hold meaningful child nodes, in source order."""
-    fields = _CHILD_FIELDS.get(node_type)
-    if fields is None:
-        names = [field.name for field in dataclasses.fields(node_type)
-                 if field.name not in _LAYOUT_FIELDS and not field.name.startswith("whitespace")]
-        if "decorators" in names:  # decorators come first in the source
-            names.remove("decorators")
-            names.insert(0, "decorators")
-        fields = _CHILD_FIELDS[node_type] = tuple(names)
-    return fields
 
 
 class Dispatcher:
@@ -128,11 +74,14 @@ class Dispatcher:
         ancestors = context.ancestors
         visits, leaves = self._visits, self._leaves
         tracked = _TRACKED_TYPES
-        node_base = cst.CSTNode
+        # type(x) lookups in a per-type table: isinstance against libcst's CSTNode, an ABC,
+        # was 1.4 million ABC checks on benchmarks/bench.py's tree (cProfile)
+        known_kinds = NODE_KINDS
         #: (node, leaving) pairs; a node is pushed again as "leaving" before its children
         stack: list[tuple[cst.CSTNode, bool]] = [(module, False)]
+        push, pop = stack.append, stack.pop
         while stack:
-            node, leaving = stack.pop()
+            node, leaving = pop()
             node_type = type(node)
             if leaving:
                 ancestors.pop()
@@ -148,15 +97,27 @@ class Dispatcher:
             if handlers:
                 self._call(handlers, node)
             ancestors.append(node)
-            stack.append((node, True))
+            push((node, True))
             children: list[cst.CSTNode] = []
-            for name in _child_fields(node_type):
+            for name in child_fields(node_type):
                 value = getattr(node, name)
-                if isinstance(value, node_base):
+                kind = type(value)
+                if kind is tuple or kind is list:
+                    for item in value:
+                        item_kind = type(item)
+                        is_node = known_kinds.get(item_kind)
+                        if is_node is None:
+                            is_node = is_node_kind(item_kind)
+                        if is_node:
+                            children.append(item)
+                    continue
+                is_node = known_kinds.get(kind)
+                if is_node is None:
+                    is_node = is_node_kind(kind)
+                if is_node:
                     children.append(value)
-                elif type(value) in (tuple, list):
-                    children.extend(item for item in value if isinstance(item, node_base))
-            stack.extend((child, False) for child in reversed(children))
+            for child in reversed(children):
+                push((child, False))
 
     def _call(self, handlers: list, node: cst.CSTNode) -> None:
         for rule, method in handlers:
@@ -218,7 +179,7 @@ def analyse_module(module: cst.Module, text: str, path: str, settings: Settings,
 
     Dispatcher(rules, context, on_error).walk(module)
     if sink:
-        placed = _place(sink, module, path)
+        placed = _place(sink, module, text, path)
         if apply_noqa:
             placed = _without_noqa(placed, text)
         result.findings = [finding for finding, _ in placed]
@@ -227,12 +188,16 @@ def analyse_module(module: cst.Module, text: str, path: str, settings: Settings,
     return result
 
 
-def _place(reports: list[Report], module: cst.Module, path: str
+def _place(reports: list[Report], module: cst.Module, text: str, path: str
            ) -> list[tuple[Finding, Fix | None]]:
     """Turn reports into findings; positions are computed once, only when there are some."""
     positions = None
-    if any(report.node is not None for report in reports):
-        positions = MetadataWrapper(module, unsafe_skip_copy=True).resolve(PositionProvider)
+    nodes = [report.node for report in reports if report.node is not None]
+    if nodes:
+        for report in reports:
+            if report.fix is not None:
+                nodes += fix_anchors(report.fix, module)
+        positions = positions_of(module, text, nodes)
     findings = []
     seen: set[tuple] = set()
     for report in reports:
@@ -247,9 +212,11 @@ def _place(reports: list[Report], module: cst.Module, path: str
         if key in seen:
             continue
         seen.add(key)
+        edits = (edits_of(report.fix, module, positions)
+                 if report.fix is not None and positions is not None else ())
         findings.append((Finding(path, None, line, column, report.rule.code, report.rule.name,
                                  report.severity, report.message, end_line, end_column,
-                                 fixable=report.fix is not None), report.fix))
+                                 fixable=report.fix is not None, edits=edits), report.fix))
     return findings
 
 
@@ -312,33 +279,6 @@ def lint_text(text: str, path: str = "<string>", settings: Settings | None = Non
     return analysed
 
 
-#: larger files are reported as NNL001 instead of parsed: libcst parses about 10k lines/s
-#: (DESIGN §6), so 1 MiB (~25k lines) already costs seconds; real training scripts are far
-#: smaller, and files this big are generated (common practice)
-MAX_FILE_BYTES = 1 << 20
-
-
-def read_source(path: str) -> bytes | str:
-    """The file's bytes, or a one-line message saying why it cannot be read."""
-    try:
-        status = os.stat(path)
-    except OSError as error:
-        return f"nnlint: {path}: cannot read: {error.strerror or type(error).__name__}"
-    if stat.S_ISDIR(status.st_mode):
-        return f"nnlint: {path}: is a folder, not a file; skipped"
-    if not stat.S_ISREG(status.st_mode):
-        # FIFOs and devices would block or never end; never open them
-        return f"nnlint: {path}: not a regular file; skipped"
-    limit = notebooks.MAX_NOTEBOOK_BYTES if notebooks.is_notebook(path) else MAX_FILE_BYTES
-    if status.st_size > limit:
-        return status.st_size
-    try:
-        with open(path, "rb") as handle:
-            return handle.read(limit + 1)
-    except OSError as error:
-        return f"nnlint: {path}: cannot read: {error.strerror or type(error).__name__}"
-
-
 def check_file(path: str, settings: Settings, project: ProjectIndex | None = None) -> FileResult:
     """Read, decode and lint one file; never raises for bad input."""
     data = read_source(path)
@@ -368,115 +308,3 @@ def check_data(path: str, data: bytes | int, settings: Settings,
             result.findings = [parse_error_finding(path, error)]
         return result
     return lint_text(text, path, settings, project)
-
-
-@dataclass
-class RunReport:
-    findings: list[Finding]
-    files_checked: int
-    errors: list[InternalError]
-    messages: list[str]
-    notes: list[str] = field(default_factory=list)
-
-
-class _Checker:
-    """Checks files for one run, in this process or a worker, with the result cache."""
-
-    def __init__(self, settings: Settings, use_cache: bool) -> None:
-        self.settings = settings
-        self.project = ProjectIndex(settings)
-        self.cache = ResultCache(settings.root, settings.cache_key()) if use_cache else None
-
-    def cached(self, path: str) -> FileResult | None:
-        if self.cache is None:
-            return None
-        data = read_source(path)
-        if not isinstance(data, bytes):
-            return None
-        findings = self.cache.get(path, data)
-        return None if findings is None else FileResult(path, findings)
-
-    def check(self, path: str) -> FileResult:
-        data = read_source(path)
-        if isinstance(data, str):
-            return FileResult(path, messages=[data])
-        if self.cache is None or isinstance(data, int):
-            return check_data(path, data, self.settings, self.project)
-        self.project.track()
-        try:
-            result = check_data(path, data, self.settings, self.project)
-        finally:
-            dependencies = self.project.untrack()
-        if not result.errors and not result.messages and not result.notes:
-            dependencies.pop(os.path.abspath(path), None)
-            self.cache.put(path, data, result.findings, dependencies)
-        return result
-
-
-_WORKER: _Checker | None = None
-
-
-def _start_worker(settings: Settings, use_cache: bool) -> None:
-    global _WORKER
-    _WORKER = _Checker(settings, use_cache)
-
-
-def _check_in_worker(path: str) -> FileResult:
-    assert _WORKER is not None
-    return _WORKER.check(path)
-
-
-#: below this many files a process pool costs more than it saves: each worker imports
-#: libcst, numpy and the rules, 0.34 s of CPU measured here (`python -c 'import
-#: nnlint.engine'`, 2026-12-02), about what checking eight small files costs
-PARALLEL_THRESHOLD = 8
-
-Progress = Callable[[int, int], None]
-
-
-def run_paths(paths: Iterable[str], settings: Settings | None = None,
-              jobs: int | None = None, use_cache: bool = False,
-              progress: Progress | None = None) -> RunReport:
-    """Discover and check files; the result does not depend on `jobs` or the cache.
-
-    `progress(done, total)` is called after each file.
-    """
-    settings = settings if settings is not None else with_default_ignores(Settings())
-    paths = list(paths)
-    messages: list[str] = []
-    for given in paths:
-        if not os.path.lexists(given):
-            messages.append(f"nnlint: {given}: no such file or folder")
-    files = list(discover([p for p in paths if os.path.lexists(p)], settings.exclude,
-                          settings.root))
-    checker = _Checker(settings, use_cache)
-    done: dict[str, FileResult] = {}
-    for path in files:
-        hit = checker.cached(path)
-        if hit is not None:
-            done[path] = hit
-    pending = [path for path in files if path not in done]
-    report_progress = progress or (lambda finished, total: None)
-    jobs = jobs if jobs is not None else (os.cpu_count() or 1)
-    if jobs <= 1 or len(pending) < PARALLEL_THRESHOLD:
-        for path in pending:
-            done[path] = checker.check(path)
-            report_progress(len(done), len(files))
-    else:
-        with ProcessPoolExecutor(max_workers=jobs, initializer=_start_worker,
-                                 initargs=(settings, use_cache)) as pool:
-            chunk = max(1, min(16, len(pending) // (jobs * 4)))
-            for path, result in zip(pending, pool.map(_check_in_worker, pending,
-                                                      chunksize=chunk)):
-                done[path] = result
-                report_progress(len(done), len(files))
-    findings: list[Finding] = []
-    errors: list[InternalError] = []
-    for path in files:
-        result = done[path]
-        findings.extend(result.findings)
-        errors.extend(result.errors)
-        messages.extend(result.messages)
-    findings.sort(key=Finding.sort_key)
-    notes = [note for path in files for note in done[path].notes]
-    return RunReport(findings, len(files), errors, messages, notes)

@@ -16,10 +16,12 @@ from dataclasses import dataclass, field
 
 import libcst as cst
 
+from nnlint import notebooks
 from nnlint.analysis.project import ProjectIndex, content_hash
 from nnlint.config import Settings
-from nnlint.engine import analyse_module, lint_text, read_source
-from nnlint.files import DecodeError, decode
+from nnlint.edits import with_imports
+from nnlint.engine import analyse_module, lint_text
+from nnlint.files import DecodeError, decode, read_source
 from nnlint.finding import Finding
 from nnlint.parsing import ParseFailure, parse
 from nnlint.rules.base import Fix
@@ -75,45 +77,6 @@ def _non_overlapping(fixes: list[Fix]) -> list[Fix]:
     return chosen
 
 
-def _is_import(statement: cst.CSTNode) -> bool:
-    return isinstance(statement, cst.SimpleStatementLine) and any(
-        isinstance(small, (cst.Import, cst.ImportFrom)) for small in statement.body)
-
-
-def _with_imports(module: cst.Module, imports: list[str]) -> cst.Module:
-    """`module` with each import statement it lacks added after its last top-level import.
-
-    Only the imports before the first function or class count as the module's import block,
-    so an added import never lands between definitions; with none, it goes after the
-    docstring (or first).
-    """
-    present = {module.code_for_node(statement.with_changes(leading_lines=())).strip()
-               for statement in module.body if _is_import(statement)}
-    wanted = []
-    for text in imports:
-        statement = cst.parse_statement(text)
-        code = module.code_for_node(statement).strip()
-        if code not in present:
-            present.add(code)
-            wanted.append(statement)
-    if not wanted:
-        return module
-    body = list(module.body)
-    position = 0
-    for index, statement in enumerate(body):
-        if isinstance(statement, (cst.FunctionDef, cst.ClassDef)):
-            break
-        if _is_import(statement) or (index == 0 and _is_docstring(statement)):
-            position = index + 1
-    return module.with_changes(body=body[:position] + wanted + body[position:])
-
-
-def _is_docstring(statement: cst.CSTNode) -> bool:
-    return (isinstance(statement, cst.SimpleStatementLine) and len(statement.body) == 1
-            and isinstance(statement.body[0], cst.Expr)
-            and isinstance(statement.body[0].value, (cst.SimpleString, cst.ConcatenatedString)))
-
-
 def fix_text(text: str, path: str, settings: Settings, project: ProjectIndex | None = None
              ) -> tuple[str, list[Finding], list[Finding]]:
     """(fixed text, findings fixed, findings remaining) for one file's text."""
@@ -132,7 +95,7 @@ def fix_text(text: str, path: str, settings: Settings, project: ProjectIndex | N
                                                for fix in fixes}))
         imports = [text for fix in fixes for text in fix.imports]
         if imports:
-            fixed_module = _with_imports(fixed_module, imports)
+            fixed_module = with_imports(fixed_module, imports)
         rewritten = fixed_module.code
         try:
             parse(rewritten)
@@ -160,6 +123,8 @@ def fix_file(path: str, settings: Settings, project: ProjectIndex | None = None,
     if isinstance(data, int):
         result.messages.append(f"nnlint: {path}: too large to fix; skipped")
         return result
+    if notebooks.is_notebook(path):
+        return _fix_notebook(result, data, settings, project, write)
     try:
         text = decode(data)
     except DecodeError as error:
@@ -169,11 +134,49 @@ def fix_file(path: str, settings: Settings, project: ProjectIndex | None = None,
     fixed, result.applied, result.remaining = fix_text(text, path, settings, project)
     result.fixed = fixed
     if write and result.changed:
-        message = write_atomically(path, data, fixed)
-        if message is not None:
-            result.messages.append(message)
-            result.fixed = result.original
-            result.applied = []
+        _write_back(result, data)
+    return result
+
+
+def _write_back(result: FixResult, data: bytes) -> None:
+    """Write the fixed text over `data`; on refusal, record why and that nothing changed."""
+    message = write_atomically(result.path, data, result.fixed)
+    if message is not None:
+        result.messages.append(message)
+        result.fixed = result.original
+        result.applied = []
+
+
+def _fix_notebook(result: FixResult, data: bytes, settings: Settings,
+                  project: ProjectIndex | None, write: bool) -> FixResult:
+    """Fix a notebook's code cells as one program and put the changed lines back in them."""
+    path = result.path
+    try:
+        program = notebooks.read_program(data)
+    except notebooks.NotebookError as error:
+        result.messages.append(f"nnlint: {path}: {error.message}; not fixed")
+        return result
+    except notebooks.NotPythonNotebook:
+        return result  # nothing nnlint checks, so nothing to fix
+    if program.has_open_cell and program.first_broken_cell() is not None:
+        # a cell that does not compile on its own: check reports it; nothing is rewritten
+        result.remaining = notebooks.check_notebook(path, data, settings, project).findings
+        return result
+    fixed, applied, remaining = fix_text(program.text, path, settings, project)
+    result.applied = [program.place(finding) for finding in applied]
+    result.remaining = [program.place(finding) for finding in remaining]
+    result.original = result.fixed = data.decode("utf-8-sig")
+    if fixed == program.text:
+        return result
+    try:
+        result.fixed = notebooks.rewrite_cells(data, program, fixed)
+    except notebooks.NotebookError as error:
+        result.messages.append(f"nnlint: {path}: {error.message}; not fixed")
+        result.remaining = notebooks.check_notebook(path, data, settings, project).findings
+        result.applied = []
+        return result
+    if write:
+        _write_back(result, data)
     return result
 
 

@@ -81,6 +81,7 @@ class Plugin:
 
     def _findings(self):
         from nnlint.engine import PARSE_ERROR, lint_text
+        from nnlint.runner import collector_tuned_for_trees
 
         if self._filename.endswith(".ipynb"):
             return []  # notebook JSON is not Python; `nnlint check` reads notebooks itself
@@ -90,7 +91,8 @@ class Plugin:
         if self.precision is not None:
             settings = replace(settings, precision=self.precision)
         text = "".join(self._lines)
-        result = lint_text(text, self._filename, settings, _project(), apply_noqa=False)
+        with collector_tuned_for_trees():  # restored before flake8 goes on
+            result = lint_text(text, self._filename, settings, _project(), apply_noqa=False)
         for error in result.errors:
             LOG.warning("%s", error.describe())
         return [finding for finding in result.findings if finding.code != PARSE_ERROR]

@@ -25,7 +25,7 @@ from nnlint.finding import Finding
 if TYPE_CHECKING:
     from nnlint.analysis.project import ProjectIndex
     from nnlint.config import Settings
-    from nnlint.engine import FileResult
+    from nnlint.finding import FileResult
 
 NOTEBOOK_SUFFIX = ".ipynb"
 #: a notebook carries its outputs (base64 plots, tables), so it may be far larger than a .py
@@ -43,6 +43,7 @@ PLACEHOLDER = "pass"
 _ASSIGNED_MAGIC = re.compile(
     r"[ \t]*[A-Za-z_][\w.]*(?:[ \t]*,[ \t]*[A-Za-z_][\w.]*)*[ \t]*=[ \t]*[%!]")
 _NEWLINE = re.compile(r"\r\n|\r|\n")
+_NEWLINE_KEPT = re.compile(r"(\r\n|\r|\n)")
 _CELL_MAGIC_NAME = re.compile(r"%%(\w*)")
 
 
@@ -102,9 +103,106 @@ class NotebookProgram:
             end_cell, end_line = self.locate(end_line)
             if end_cell != cell:
                 end_line = end_column = None
-        # `nnlint fix` rewrites .py files only, so nothing in a notebook is offered as fixable
+        # the text edits count program lines; in a notebook they would point at the wrong
+        # lines of the JSON file, so only `nnlint fix` (which rewrites cells) applies the fix
         return replace(finding, cell=cell, line=line, end_line=end_line, end_column=end_column,
-                       fixable=False)
+                       edits=())
+
+
+def rewrite_cells(data: bytes, program: NotebookProgram, fixed: str) -> str:
+    """The notebook's JSON text with `fixed` (program.text, rewritten) put back into its cells.
+
+    Only the `source` of cells whose lines changed is replaced, and the JSON is written with
+    the layout the file already has (indent, escaping, final newline, line endings), so
+    every other byte stays as it was. Raises NotebookError when that cannot be guaranteed:
+    the layout is not one json.dumps reproduces, a change spans two cells or touches a line
+    of IPython syntax, or the result does not read back as the fixed program.
+    """
+    text = data.decode("utf-8-sig")  # read_program has already accepted these bytes
+    document = json.loads(text)
+    layout = _layout_of(document, text)
+    cells = document["cells"]
+    checked = dict(program.cells)
+    for index, changes in _cell_changes(program, fixed).items():
+        cell = cells[index]
+        source = _source_of(cell, index)
+        lines, endings = _lines_and_endings(source)
+        for first, end, _ in changes:
+            if any(checked[index][number - 1] != lines[number - 1]
+                   for number in range(first, end)):
+                raise NotebookError(f"cell {index}: a fix touches IPython syntax")
+        usual = next((ending for ending in endings if ending), "\n")
+        for first, end, new_lines in sorted(changes, reverse=True):
+            new_endings = [usual] * len(new_lines)
+            if end > first and new_endings:
+                new_endings[-1] = endings[end - 2]  # the block's last line keeps its ending
+            elif first > len(lines) and new_endings and lines and not endings[-1]:
+                # appended after a last line without a newline: the new last line has none
+                endings[-1], new_endings[-1] = usual, ""
+            lines[first - 1:end - 1] = new_lines
+            endings[first - 1:end - 1] = new_endings
+        # nbformat's list form holds one line per string, each with its line ending
+        pieces = [line + ending for line, ending in zip(lines, endings) if line + ending]
+        cell["source"] = pieces if isinstance(cell["source"], list) else "".join(pieces)
+    indent, ensure_ascii, final_newline, crlf = layout
+    written = json.dumps(document, indent=indent, ensure_ascii=ensure_ascii)
+    written += "\n" if final_newline else ""
+    if crlf:
+        written = written.replace("\n", "\r\n")
+    if read_program(written.encode("utf-8")).text != fixed:
+        raise NotebookError("the rewritten cells do not read back as the fixed code")
+    return written
+
+
+def _layout_of(document: object, text: str) -> tuple[int | None, bool, bool, bool]:
+    """(indent, ensure_ascii, final newline, CRLF) with which json.dumps gives back `text`."""
+    crlf = "\r\n" in text
+    plain = text.replace("\r\n", "\n") if crlf else text
+    # Jupyter writes indent=1 without ASCII escaping (nbformat's JSON writer, from memory);
+    # other tools use 2 or 4, some escape non-ASCII
+    for indent in (1, 2, 4, None):
+        for ensure_ascii in (False, True):
+            written = json.dumps(document, indent=indent, ensure_ascii=ensure_ascii)
+            if plain in (written, written + "\n"):
+                return indent, ensure_ascii, plain != written, crlf
+    raise NotebookError("its JSON layout is not one nnlint can write back unchanged")
+
+
+def _cell_changes(program: NotebookProgram, fixed: str
+                  ) -> dict[int, list[tuple[int, int, list[str]]]]:
+    """Per cell: (first line, end line exclusive, new lines) replacing lines of that cell."""
+    import difflib
+
+    old, new = program.text.splitlines(), fixed.splitlines()
+    changes: dict[int, list[tuple[int, int, list[str]]]] = {}
+    matcher = difflib.SequenceMatcher(None, old, new, autojunk=False)
+    for tag, start, stop, new_start, new_stop in matcher.get_opcodes():
+        if tag == "equal":
+            continue
+        if start < stop:
+            owners = {program.line_map[number][0] for number in range(start, stop)}
+            if len(owners) != 1:
+                raise NotebookError("a fix spans two cells")
+            cell, first = program.line_map[start]
+            end = program.line_map[stop - 1][1] + 1
+        elif start > 0:  # an insertion goes after the line before it, in that line's cell
+            cell, line = program.line_map[start - 1]
+            first = end = line + 1
+        else:
+            cell, first = program.line_map[0]
+            end = first
+        changes.setdefault(cell, []).append((first, end, new[new_start:new_stop]))
+    return changes
+
+
+def _lines_and_endings(source: str) -> tuple[list[str], list[str]]:
+    """The cell's lines as python_lines splits them, and the line ending after each."""
+    parts = _NEWLINE_KEPT.split(source)
+    lines, endings = parts[0::2], parts[1::2] + [""]
+    if len(lines) > 1 and lines[-1] == "":
+        lines.pop()
+        endings.pop()
+    return lines, endings
 
 
 def is_notebook(path: str) -> bool:

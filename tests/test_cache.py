@@ -4,7 +4,7 @@ import os
 
 from nnlint.cache import FOLDER_NAME, ResultCache
 from nnlint.config import Settings, with_default_ignores
-from nnlint.engine import run_paths
+from nnlint.runner import run_paths
 from tests.conftest import run_cli
 
 HAZARD = "import torch\nm = torch.nn.Linear(1, 1)\nm.eval\n"
@@ -80,3 +80,25 @@ def test_entries_are_written_atomically_and_not_through_symlinks(tmp_path):
     leftovers = [p for p in cache.folder.iterdir() if p.name.endswith(".tmp")]
     assert leftovers == [planted]
     assert not (cache.folder / name).exists()  # the write was refused, not redirected
+
+
+def test_a_fully_cached_run_imports_neither_the_parser_nor_the_rules(tmp_path):
+    # what keeps a warm re-run fast (issue 9: warm/cold <= 0.05) is not importing libcst,
+    # numpy or the rule modules at all when every file's result is in the cache
+    import subprocess
+    import sys
+
+    (tmp_path / "train.py").write_text(HAZARD)
+    assert run_cli("check", ".", cwd=tmp_path).returncode == 1
+    probe = ("import sys\nfrom nnlint.cli import main\nstatus = main(['check', '.'])\n"
+             "heavy = [name for name in ('libcst', 'numpy', 'nnlint.rules', 'nnlint.engine')\n"
+             "         if name in sys.modules]\n"
+             "print(status, heavy, file=sys.stderr)\n")
+    warm = subprocess.run([sys.executable, "-c", probe], cwd=tmp_path, capture_output=True,
+                          text=True, timeout=120)
+    assert warm.stderr.strip().splitlines()[-1] == "1 []", warm.stderr
+    assert "NNL403" in warm.stdout
+    (tmp_path / "train.py").write_text(HAZARD + "m.train\n")  # a miss imports them, once
+    cold = subprocess.run([sys.executable, "-c", probe], cwd=tmp_path, capture_output=True,
+                          text=True, timeout=120)
+    assert "'libcst'" in cold.stderr.strip().splitlines()[-1], cold.stderr

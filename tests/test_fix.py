@@ -112,11 +112,26 @@ def test_each_fix_removes_its_finding_and_adds_none(tmp_path, fixture):
     before_unfixable = [(f.code, f.message) for f in before if not f.fixable]
     assert sorted((f.code, f.message) for f in after) == sorted(before_unfixable)
     original_lines = fixture.read_text().splitlines()
-    fixed_lines = copy.read_text().splitlines()
+    fixed_lines = _without_added_imports(original_lines, copy.read_text().splitlines())
     assert len(original_lines) == len(fixed_lines)
     changed = {number for number, (old, new) in enumerate(zip(original_lines, fixed_lines), 1)
                if old != new}
     assert changed == {f.line for f in before if f.fixable}
+
+
+def _without_added_imports(original_lines, fixed_lines):
+    """`fixed_lines` less the import lines a fix added (Fix.imports), so the rest lines up.
+
+    An added import is a new top-level `import`/`from` line placed right after the original
+    ones or the docstring: lines before it are unchanged, so removing it restores numbering.
+    """
+    added = [index for index, line in enumerate(fixed_lines)
+             if line.startswith(("import ", "from ")) and line not in original_lines]
+    if added:
+        first = added[0]
+        assert fixed_lines[:first] == original_lines[:first]  # nothing above them moved
+        assert added == list(range(first, first + len(added)))  # one block
+    return [line for index, line in enumerate(fixed_lines) if index not in added]
 
 
 def test_fixing_a_copy_of_the_demo_leaves_only_unfixable_findings(tmp_path):
@@ -167,7 +182,32 @@ def test_rules_declare_their_rewrite_exactly_when_their_findings_are_fixable():
 def test_imports_a_fix_needs_are_added_once_after_the_import_block(source, expected):
     import libcst as cst
 
-    from nnlint.fix import _with_imports
+    from nnlint.edits import with_imports
 
     imports = ["import torch.nn.functional as F", "import torch.nn.functional as F"]
-    assert _with_imports(cst.parse_module(source), imports).code == expected
+    assert with_imports(cst.parse_module(source), imports).code == expected
+
+
+@pytest.mark.parametrize("source", [
+    '"""Doc."""\nimport torch  # framework\n\nscores = torch.log(torch.sigmoid(x))\n',
+    "import torch\nimport torch.nn.functional as F\nscores = torch.log(torch.sigmoid(x))\n",
+    "import torch\n\n\ndef score(x):\n    return torch.log(\n        torch.sigmoid(x))\n",
+])
+def test_text_edits_of_a_fix_make_the_same_text_as_the_tree_rewrite(source):
+    # SARIF carries fixes as text edits; applied, they must give what `nnlint fix` writes
+    import libcst as cst
+    from libcst.metadata import MetadataWrapper, PositionProvider
+
+    from nnlint.edits import apply_edits, edits_of, with_imports
+    from nnlint.fix import _Replacer
+    from nnlint.rules.base import Fix
+
+    module = cst.parse_module(source)
+    positions = MetadataWrapper(module, unsafe_skip_copy=True).resolve(PositionProvider)
+    target = next(node for node in positions if isinstance(node, cst.Call)
+                  and module.code_for_node(node.func) == "torch.log")
+    fix = Fix(target, cst.parse_expression("F.logsigmoid(x)"),
+              imports=("import torch.nn.functional as F",))
+    tree = with_imports(module.visit(_Replacer({id(target): fix.replacement})), list(fix.imports))
+    assert apply_edits(source, edits_of(fix, module, positions)) == tree.code
+    assert "F.logsigmoid(x)" in tree.code and tree.code.count("import torch.nn.functional") == 1

@@ -126,9 +126,9 @@ def test_fixture_notebook_text_output():
     assert result.stdout.splitlines() == [
         "notebooks/kestrel_delay_review.ipynb:cell 5:2:5: NNL403 `optimizer.zero_grad` is only "
         "read, never called: gradients are never reset and keep accumulating; write "
-        "`optimizer.zero_grad()`",
+        "`optimizer.zero_grad()` (fixable)",
         "notebooks/kestrel_delay_review.ipynb:cell 7:2:1: NNL403 `delay_net.eval` is only read, "
-        "never called: the model stays in training mode; write `delay_net.eval()`",
+        "never called: the model stays in training mode; write `delay_net.eval()` (fixable)",
     ]
 
 

@@ -10,6 +10,7 @@ import jsonschema
 import pytest
 
 from nnlint import __version__
+from nnlint.finding import Edit
 from nnlint.report.sarif import artifact_uri
 from nnlint.rules.base import all_rules
 from tests.conftest import FIXTURES, ROOT, SHARED_STANDARDS, run_cli
@@ -148,3 +149,35 @@ def test_readme_ci_recipe_keeps_the_report_and_fails_on_findings(tmp_path):
                for result in document["runs"][0]["results"]]
     assert located == [("notebooks/review.ipynb", 2), ("notebooks/review.ipynb", 2),
                        ("src/train.py", 3)]
+
+
+def test_fixable_results_carry_the_fix_that_nnlint_fix_applies(tmp_path, sarif_validator):
+    from nnlint.edits import apply_edits
+
+    source = ("import torch\n\nnet = torch.nn.Linear(2, 2)\nnet.eval  # score\n"
+              "net.train\nnet.eval()\n")
+    (tmp_path / "score.py").write_text(source)
+    _, document = sarif_of(".", cwd=tmp_path)
+    assert schema_errors(sarif_validator, document) == []
+    results = document["runs"][0]["results"]
+    assert [result["ruleId"] for result in results] == ["NNL403", "NNL403"]
+    edits = []
+    for result in results:
+        (fix,) = result["fixes"]
+        assert fix["description"]["text"] == "nnlint fix adds the missing call parentheses"
+        (change,) = fix["artifactChanges"]
+        assert change["artifactLocation"]["uri"] == "score.py"
+        for replacement in change["replacements"]:
+            region = replacement["deletedRegion"]
+            edits.append(Edit(region["startLine"], region["startColumn"], region["endLine"],
+                              region["endColumn"], replacement["insertedContent"]["text"]))
+    applied = apply_edits(source, edits)
+    assert run_cli("fix", "score.py", cwd=tmp_path).returncode == 0
+    assert applied == (tmp_path / "score.py").read_text() == source.replace(
+        "net.eval  #", "net.eval()  #").replace("net.train\n", "net.train()\n")
+
+
+def test_unfixable_and_notebook_results_carry_no_fixes():
+    _, document = sarif_of("notebooks", "rules/NNL201")
+    results = document["runs"][0]["results"]
+    assert results and all("fixes" not in result for result in results)

@@ -258,11 +258,8 @@ class Values:
         if family == "constant":
             return _fill(self.number(_argument(call, 1, "val")), spelled)
         if family == "normal":
-            mean = self._optional(call, 1, "mean", 0.0)
-            std = self._optional(call, 2, "std", 1.0)
-            rule = ("fixed", std * std) if std is not None else None
-            return Init("random", mean=math.nan if mean is None else mean, variance_rule=rule,
-                        spelling=spelled)
+            return _normal_init(self._optional(call, 1, "mean", 0.0),
+                                self._optional(call, 2, "std", 1.0), spelled)
         if family == "uniform":
             return _uniform_init(self._optional(call, 1, "a", 0.0),
                                  self._optional(call, 2, "b", 1.0), spelled)
@@ -293,11 +290,8 @@ class Values:
         if family == "constant":
             return _fill(self.number(_argument(call, 0, "value")), spelled)
         if family == "normal":
-            mean = self._optional(call, 0, "mean", 0.0)
-            std = self._optional(call, 1, "std", 1.0)
-            rule = ("fixed", std * std) if std is not None else None
-            return Init("random", mean=math.nan if mean is None else mean, variance_rule=rule,
-                        spelling=spelled)
+            return _normal_init(self._optional(call, 0, "mean", 0.0),
+                                self._optional(call, 1, "std", 1.0), spelled)
         return _uniform_init(self._optional(call, 0, "from", 0.0),
                              self._optional(call, 1, "to", 1.0), spelled)
 
@@ -390,6 +384,13 @@ def _fill(value: float | None, spelled: str) -> Init:
     if value == 0.0:
         return Init("zeros", spelling=spelled)
     return Init("constant", value, spelling=spelled)
+
+
+def _normal_init(mean: float | None, std: float | None, spelled: str) -> Init:
+    """Normal(mean, std^2) draws; an unknown mean is NaN, an unknown std no variance rule."""
+    rule = ("fixed", std * std) if std is not None else None
+    return Init("random", mean=math.nan if mean is None else mean, variance_rule=rule,
+                spelling=spelled)
 
 
 def _uniform_init(low: float | None, high: float | None, spelled: str) -> Init:

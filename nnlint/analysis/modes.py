@@ -136,7 +136,8 @@ def _is_content(value: object) -> bool:
     return known
 
 
-_COMPREHENSIONS = (cst.ListComp, cst.SetComp, cst.GeneratorExp, cst.DictComp)
+#: exact types (libcst nodes are never subclassed), so `type(node) in` replaces isinstance
+_COMPREHENSIONS = frozenset({cst.ListComp, cst.SetComp, cst.GeneratorExp, cst.DictComp})
 
 
 def calls_in(node: cst.CSTNode, evaluation_data: dict | None = None) -> list[cst.Call]:
@@ -146,33 +147,41 @@ def calls_in(node: cst.CSTNode, evaluation_data: dict | None = None) -> list[cst
     `evaluation_data` is given, calls inside a comprehension over evaluation data
     (`[model(x) for x in val_loader]`) map id(call) -> that iterable there.
     """
+    # the hottest loop of the mode analysis (profiled on benchmarks/bench.py's tree): exact
+    # type tests and cached per-type answers instead of isinstance on libcst's ABCs
     found: list[cst.Call] = []
     stack: list[tuple[cst.CSTNode, bool, cst.CSTNode | None]] = [(node, False, None)]
+    push, pop = stack.append, stack.pop
+    content = _CONTENT_TYPES
     while stack:
-        current, expanded, data = stack.pop()
+        current, expanded, data = pop()
         if expanded:
             found.append(current)  # type: ignore[arg-type]
             if data is not None and evaluation_data is not None:
                 evaluation_data[id(current)] = data
             continue
-        if isinstance(current, cst.Lambda):
+        kind = type(current)
+        if kind is cst.Lambda:
             continue
-        if isinstance(current, _COMPREHENSIONS) and evaluation_data is not None:
+        if kind in _COMPREHENSIONS and evaluation_data is not None:
             loop: cst.CompFor | None = current.for_in
             while loop is not None:
                 if _is_evaluation_data(loop.iter):
                     data = loop.iter
                 loop = loop.inner_for_in
-        if isinstance(current, cst.Call):
-            stack.append((current, True, data))
+        if kind is cst.Call:
+            push((current, True, data))
         children = []
-        for name in _child_fields(type(current)):
+        for name in _child_fields(kind):
             value = getattr(current, name)
-            if isinstance(value, (tuple, list)):
-                children.extend(item for item in value if _is_content(item))
-            elif _is_content(value):
+            value_type = type(value)
+            if value_type is tuple or value_type is list:
+                children.extend(item for item in value
+                                if content.get(type(item)) or _is_content(item))
+            elif content.get(value_type) or _is_content(value):
                 children.append(value)
-        stack.extend((child, False, data) for child in reversed(children))
+        for child in reversed(children):
+            push((child, False, data))
     return found
 
 

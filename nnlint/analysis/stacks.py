@@ -934,24 +934,17 @@ class _InitScanner:
 
     def _object(self, expr: cst.BaseExpression, roots: dict[str, tuple]) -> object:
         """The member an expression like `self.net[0]` or `net[2]` denotes."""
-        steps: list = []
-        while isinstance(expr, (cst.Attribute, cst.Subscript)):
-            if isinstance(expr, cst.Attribute):
-                steps.append(expr.attr.value)
-            else:
-                if len(expr.slice) != 1 or not isinstance(expr.slice[0].slice, cst.Index):
-                    return None
-                index = self.values.number(expr.slice[0].slice.value)
-                if index is None or index != int(index):
-                    return None
-                steps.append(int(index))
-            expr = expr.value
-        if not isinstance(expr, cst.Name) or expr.value not in roots:
+        def index_of(index: cst.BaseExpression) -> int | None:
+            number = self.values.number(index)
+            return None if number is None or number != int(number) else int(number)
+
+        path = _access_path(expr, index_of)
+        if path is None or path[0] not in roots:
             return None
-        kind, current = roots[expr.value]
+        kind, current = roots[path[0]]
         if kind == "each":
             return None
-        for step in reversed(steps):
+        for step in path[1]:
             current = _step(current, step, self.values)
             if current is None:
                 return None
@@ -1049,6 +1042,24 @@ def _first_parameter(function: FunctionNode) -> str | None:
 
 def _tensor_path(expr: cst.BaseExpression) -> tuple[str, list, str] | None:
     """`self.net[0].weight.data` -> ("self", ["net", 0], "weight")."""
+    path = _access_path(expr, lambda index: (index.evaluated_value
+                                             if isinstance(index, cst.Integer) else None))
+    if path is None:
+        return None
+    root, steps = path
+    while steps and steps[-1] == "data":
+        steps.pop()
+    if steps and steps[-1] in ("weight", "bias", "kernel"):
+        return root, steps[:-1], steps[-1]
+    if steps and isinstance(steps[-1], str):
+        return root, steps[:-1], steps[-1]
+    return None
+
+
+def _access_path(expr: cst.BaseExpression, index_of) -> tuple[str, list] | None:
+    """`self.net[0].weight` -> ("self", ["net", 0, "weight"]): the root name and the steps
+    from it, attribute names and integer indexes (`index_of` evaluates an index; None: not
+    one); None for any other shape."""
     steps: list = []
     while isinstance(expr, (cst.Attribute, cst.Subscript)):
         if isinstance(expr, cst.Attribute):
@@ -1056,21 +1067,15 @@ def _tensor_path(expr: cst.BaseExpression) -> tuple[str, list, str] | None:
         else:
             if len(expr.slice) != 1 or not isinstance(expr.slice[0].slice, cst.Index):
                 return None
-            index = expr.slice[0].slice.value
-            if not isinstance(index, cst.Integer):
+            index = index_of(expr.slice[0].slice.value)
+            if index is None:
                 return None
-            steps.append(int(index.value))
+            steps.append(index)
         expr = expr.value
     if not isinstance(expr, cst.Name):
         return None
     steps.reverse()
-    while steps and steps[-1] == "data":
-        steps.pop()
-    if steps and steps[-1] in ("weight", "bias", "kernel"):
-        return expr.value, steps[:-1], steps[-1]
-    if steps and isinstance(steps[-1], str):
-        return expr.value, steps[:-1], steps[-1]
-    return None
+    return expr.value, steps
 
 
 def _step(current: object, step: object, values: Values) -> object:

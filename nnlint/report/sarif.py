@@ -54,8 +54,27 @@ def artifact_uri(path: str) -> str:
     return quote(path.replace(os.sep, "/"))
 
 
-def result_object(finding: Finding, rule_index: dict[str, int]) -> dict:
-    """A result (§3.27) with one physical location."""
+def fix_object(finding: Finding, rule: type[Rule] | None) -> dict:
+    """A fix (§3.55): the rewrite `nnlint fix` applies, as replacements (§3.57) of the file.
+
+    Each replacement deletes a region (§3.30; an empty one, start equal to end, is an
+    insertion point) and inserts `insertedContent.text` there (§3.3 artifactContent).
+    """
+    replacements = [{
+        "deletedRegion": {"startLine": edit.line, "startColumn": edit.column,
+                          "endLine": edit.end_line, "endColumn": edit.end_column},
+        "insertedContent": {"text": edit.text},
+    } for edit in finding.edits]
+    fix: dict = {"artifactChanges": [{"artifactLocation": {"uri": artifact_uri(finding.path)},
+                                      "replacements": replacements}]}
+    if rule is not None and rule.rewrite:
+        fix["description"] = {"text": f"nnlint fix {rule.rewrite}"}
+    return fix
+
+
+def result_object(finding: Finding, rule_index: dict[str, int],
+                  rules: Sequence[type[Rule]] = ()) -> dict:
+    """A result (§3.27) with one physical location, and its fix where it has one."""
     region = {"startLine": finding.line, "startColumn": finding.column}
     if finding.end_line is not None and finding.end_column is not None:
         region["endLine"] = finding.end_line
@@ -76,6 +95,11 @@ def result_object(finding: Finding, rule_index: dict[str, int]) -> dict:
     }
     if finding.code in rule_index:
         result["ruleIndex"] = rule_index[finding.code]
+    # a notebook's edits count lines inside a cell, not lines of the JSON file a SARIF
+    # consumer would patch, so notebook findings carry none (`nnlint fix` fixes notebooks)
+    if finding.edits and finding.cell is None:
+        rule = rules[rule_index[finding.code]] if finding.code in rule_index else None
+        result["fixes"] = [fix_object(finding, rule)]
     return result
 
 
@@ -98,7 +122,7 @@ def document(findings: Iterable[Finding], problems: Sequence[str] = ()) -> dict:
         }},
         "invocations": [invocation],
         "columnKind": "unicodeCodePoints",
-        "results": [result_object(finding, rule_index) for finding in findings],
+        "results": [result_object(finding, rule_index, rules) for finding in findings],
     }
     return {"$schema": SCHEMA_URI, "version": SARIF_VERSION, "runs": [run]}
 

@@ -8,11 +8,13 @@ from nnlint.analysis.model import shorten
 from nnlint.analysis.precision import FloatLimits, limits
 from nnlint.analysis.stability import (active_limits, enclosing_statement, is_masked,
                                        log_argument, may_be_large)
+from nnlint.analysis.stable_forms import (Rewrite, log_probability_fix, logsumexp_fix,
+                                          softmax_fix)
 from nnlint.analysis.values import (Fact, constant_value, exp_argument, fact_of,
                                     keyword_argument, positional_argument,
                                     summed_exp_argument, summed_operand)
 from nnlint.finding import Severity
-from nnlint.rules.base import Rule, register
+from nnlint.rules.base import Fix, Rule, register
 
 #: limits of each format, computed by precision.py (numpy finfo; bfloat16 from its layout)
 _F16, _BF16, _F32, _F64 = (limits(name) for name in ("float16", "bfloat16", "float32", "float64"))
@@ -30,6 +32,10 @@ _ZERO_CAUSES = {
     "sparse": ("outside its support", "mask the zeros (where) before the log"),
 }
 _DEFAULT_CAUSE = ("for some inputs", "clamp(min=eps) first")
+
+
+def _as_fix(rewrite: Rewrite | None) -> Fix | None:
+    return None if rewrite is None else Fix(*rewrite)
 
 
 def _zero_cause(fact: Fact, bounds: FloatLimits) -> tuple[str, str]:
@@ -66,6 +72,8 @@ class LogOfMaybeZero(Rule):
     )
     bad = "probs = torch.softmax(scores, dim=-1)\nloss = -torch.log(probs)[labels].mean()"
     good = "loss = -torch.log_softmax(scores, dim=-1)[labels].mean()"
+    rewrite = ("replaces log(softmax(x)) by log_softmax(x), log(sigmoid(x)) by logsigmoid(x) "
+               "and log(1 - sigmoid(x)) by logsigmoid(-x), written out in one call")
     references = (
         "IEEE 754-2019, 9.2.1: log(0) is -infinity (divideByZero)",
         "numpy.finfo: smallest_subnormal and epsneg of float16/float32",
@@ -84,7 +92,9 @@ class LogOfMaybeZero(Rule):
             return
         bounds = active_limits(self.model, self.context.function, fact)
         when, fix = _zero_cause(fact, bounds)
-        self.report(node, what=shorten(fact.description or "a value", 40), when=when, fix=fix)
+        rewrite = log_probability_fix(self.model, node, self.model.scope_of(self.context.function))
+        self.report(node, what=shorten(fact.description or "a value", 40), when=when, fix=fix,
+                    autofix=_as_fix(rewrite))
 
 
 @register
@@ -246,6 +256,8 @@ class NaiveSoftmaxOverflow(_ExpOverflow):
     bad = "weights = np.exp(scores)\nshares = weights / weights.sum(axis=-1, keepdims=True)"
     good = ("weights = np.exp(scores - scores.max(axis=-1, keepdims=True))\n"
             "shares = weights / weights.sum(axis=-1, keepdims=True)")
+    rewrite = ("replaces exp(x) / sum(exp(x), axis, keepdims=True) by the framework's softmax "
+               "over that axis, written out in one expression")
     references = (
         "IEEE 754-2019, 7.4: overflow returns infinity under round to nearest",
         "scipy.special.softmax documentation (computes the shifted form)",
@@ -265,7 +277,8 @@ class NaiveSoftmaxOverflow(_ExpOverflow):
         if denominator is None or not self._same_exp(node, numerator, denominator):
             return
         if self._unbounded(numerator):
-            self.report(node, **self._overflow_fields())
+            self.report(node, autofix=_as_fix(softmax_fix(self.model, node, scope)),
+                        **self._overflow_fields())
 
     def _same_exp(self, node: cst.BinaryOperation, numerator: cst.BaseExpression,
                   denominator: cst.BaseExpression) -> bool:
@@ -294,6 +307,8 @@ class NaiveLogSumExp(_ExpOverflow):
     )
     bad = "log_norm = torch.log(torch.exp(scores).sum(dim=-1))"
     good = "log_norm = torch.logsumexp(scores, dim=-1)"
+    rewrite = ("replaces log(sum(exp(x), axis)) by the framework's logsumexp over that axis, "
+               "written out in one call")
     references = (
         "scipy.special.logsumexp documentation",
         "numpy.finfo: max of float16/float32/float64",
@@ -307,4 +322,5 @@ class NaiveLogSumExp(_ExpOverflow):
         statement = enclosing_statement(self.context)
         inner = summed_exp_argument(self.model, argument, scope, statement)
         if inner is not None and self._unbounded(inner):
-            self.report(node, **self._overflow_fields())
+            self.report(node, autofix=_as_fix(logsumexp_fix(self.model, node, scope)),
+                        **self._overflow_fields())
