@@ -115,18 +115,17 @@ def test_fixed_dropout_is_off_in_eval_mode_and_on_in_training_mode():
 # -- NNL602: .item() -------------------------------------------------------------------------------
 def _loop(accumulate: str, after: str, backward: str = "loss.backward()",
           start: str = "total = 0.0") -> str:
-    return TORCH_PRELUDE + textwrap.dedent(f"""\
-
-        def fit(model, loader, optimizer, scaler):
-            {start}
-            for crops, grades in loader:
-                optimizer.zero_grad()
-                loss = F.cross_entropy(model(crops), grades)
-                {backward}
-                optimizer.step()
-                {accumulate}
-            {after}
-        """)
+    """A training function; `after` runs once the loop ends (its lines indented by 4)."""
+    return TORCH_PRELUDE + (
+        "\n\ndef fit(model, loader, optimizer, scaler):\n"
+        f"    {start}\n"
+        "    for crops, grades in loader:\n"
+        "        optimizer.zero_grad()\n"
+        "        loss = F.cross_entropy(model(crops), grades)\n"
+        f"        {backward}\n"
+        "        optimizer.step()\n"
+        f"        {accumulate}\n"
+        f"    {after}\n")
 
 
 @pytest.mark.parametrize("accumulate, expected, after", [
@@ -140,6 +139,11 @@ def _loop(accumulate: str, after: str, backward: str = "loss.backward()",
 def test_a_scalar_loss_summed_into_a_printed_total_gets_item(accumulate, expected, after):
     source = _loop(accumulate, after)
     _assert_fixed_once(source, source.replace(accumulate, expected), "NNL602")
+
+
+def test_a_total_averaged_into_another_name_that_is_only_printed_gets_item():
+    source = _loop("total += loss", 'average = total / len(loader)\n    print(f"{average:.3f}")')
+    _assert_fixed_once(source, source.replace("total += loss", "total += loss.item()"), "NNL602")
 
 
 def test_a_loss_list_read_by_len_sum_and_max_gets_item():
@@ -160,7 +164,12 @@ def test_a_grad_scaler_backward_also_proves_the_loss_is_one_element():
     # read as a tensor afterwards
     ("total += loss", "print(total.item())", "loss.backward()", "total = 0.0"),
     ("total += loss", "log_total(total)", "loss.backward()", "total = 0.0"),
-    ("total += loss", "summary = total / 3", "loss.backward()", "total = 0.0"),
+    ("total += loss", "summary = total.sum()", "loss.backward()", "total = 0.0"),
+    # a name computed from the total leaves the function, or feeds a further name
+    ("total += loss", "average = total / 3\n    return average", "loss.backward()",
+     "total = 0.0"),
+    ("total += loss", "average = total / 3\n    doubled = average * 2\n    print(doubled)",
+     "loss.backward()", "total = 0.0"),
     ("history.append(loss)", "print(torch.stack(history).mean())", "loss.backward()",
      "history = []"),
     # the total starts as a tensor, not a number

@@ -567,6 +567,8 @@ def may_backward(event: Event) -> bool:
 #: what a running total starts as: a Python number (`0.0`) or an empty list (`[]`)
 NUMBER_TOTAL = "number"
 LIST_TOTAL = "list"
+#: a name computed from number totals by arithmetic (`average = total / len(loader)`)
+DERIVED_TOTAL = "derived"
 
 
 def number_totals(model: "ModuleModel", function: cst.FunctionDef | None) -> dict[str, str]:
@@ -574,7 +576,8 @@ def number_totals(model: "ModuleModel", function: cst.FunctionDef | None) -> dic
 
     Every binding is a number literal (`total = 0.0`), an addition to the name itself
     (`total += x`, `total = total + x`), or for a list an empty list (`seen = []`).
-    Name -> NUMBER_TOTAL or LIST_TOTAL.
+    Name -> NUMBER_TOTAL or LIST_TOTAL; names computed from number totals by arithmetic
+    alone (`average = total / len(loader)`) are DERIVED_TOTAL.
     """
     memo = model.memo.setdefault("loops.number_totals", {})
     scope = model.scope_of(function)
@@ -587,8 +590,40 @@ def number_totals(model: "ModuleModel", function: cst.FunctionDef | None) -> dic
             kinds = {_total_kind(name, binding) for binding in bindings}
             if len(kinds) == 1 and None not in kinds:
                 found[name] = kinds.pop()
+        for name, bindings in scope.bindings.items():
+            if name not in found and name not in scope.outer_names and \
+                    name not in scope.parameters and bindings and all(
+                        binding.augmented is None and binding.index is None
+                        and _is_arithmetic_of_totals(binding.value, found)
+                        for binding in bindings):
+                found[name] = DERIVED_TOTAL
         memo[id(scope)] = found
     return found
+
+
+def _is_arithmetic_of_totals(expr: cst.BaseExpression | None, totals: dict[str, str],
+                             depth: int = 0) -> bool:
+    """`total / len(loader)`, `-total`: arithmetic whose only names are number totals."""
+    if depth > MAX_EXPRESSION_DEPTH or expr is None:
+        return False
+    if isinstance(expr, cst.BinaryOperation) and not isinstance(expr.operator,
+                                                                cst.MatrixMultiply):
+        return _is_arithmetic_of_totals(expr.left, totals, depth + 1) and \
+            _is_arithmetic_of_totals(expr.right, totals, depth + 1) and \
+            _mentions_total(expr, totals)
+    if isinstance(expr, cst.UnaryOperation):
+        return _is_arithmetic_of_totals(expr.expression, totals, depth + 1)
+    if isinstance(expr, cst.Name):
+        return totals.get(expr.value) == NUMBER_TOTAL
+    if isinstance(expr, (cst.Integer, cst.Float)):
+        return True
+    # `len(loader)` is a count (the call is judged as a builtin where the total is read)
+    return isinstance(expr, cst.Call) and isinstance(expr.func, cst.Name) and \
+        expr.func.value == "len"
+
+
+def _mentions_total(expr: cst.BaseExpression, totals: dict[str, str]) -> bool:
+    return any(totals.get(name) == NUMBER_TOTAL for name in mentioned_names(expr))
 
 
 def _total_kind(name: str, binding) -> str | None:
@@ -607,13 +642,14 @@ def _total_kind(name: str, binding) -> str | None:
 
 
 def reads_as_number(model: "ModuleModel", name: cst.Name, ancestors: list[cst.CSTNode],
-                    kind: str, scope) -> bool:
+                    kind: str, scope) -> bool | str:
     """True when this read of a total would behave the same if it held Python floats.
 
     Climbs from the name through arithmetic (and, for lists, indexing and sum/min/max) to
     what consumes the value: an f-string, print/str/float/len, a comparison, the total's own
-    accumulation, or an expression statement. Anything else (a return, an assignment to
-    another name, a method call, a torch function) may need the tensor: False.
+    accumulation, or an expression statement. A number total assigned by arithmetic to
+    another name gives that name (str): its own reads decide. Anything else (a return, a
+    method call, a torch function) may need the tensor: False.
     """
     current: cst.CSTNode = name
     for depth, ancestor in enumerate(reversed(ancestors)):
@@ -643,7 +679,15 @@ def reads_as_number(model: "ModuleModel", name: cst.Name, ancestors: list[cst.CS
                 ancestor.value is current:
             return ancestor.attr.value == "append"
         elif isinstance(ancestor, cst.Assign):
-            return ancestor.value is current and _is_accumulation(ancestor, name.value)
+            if ancestor.value is not current:
+                return False
+            if _is_accumulation(ancestor, name.value):
+                return True
+            targets = ancestor.targets
+            if kind == NUMBER_TOTAL and len(targets) == 1 and \
+                    isinstance(targets[0].target, cst.Name):
+                return targets[0].target.value  # `average = total / n`: judged by its reads
+            return False
         else:
             return False
         current = ancestor

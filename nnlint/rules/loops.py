@@ -6,10 +6,10 @@ import libcst as cst
 from nnlint.analysis.api.loops import NON_TORCH_TENSOR_PACKAGES, SCALAR_PRESERVING_METHODS
 from nnlint.analysis.call_edits import with_method_call
 from nnlint.analysis.loops import (
-    Event, EventKind, Iteration, Role, backward_inputs, bound_values, function_events,
-    graph_carrier, is_detaching_value, is_grad_disabling, is_scalar_loss, iteration,
-    may_backward, may_reset, number_totals, reads_as_number, step_role,
-    uses_accumulating_framework,
+    DERIVED_TOTAL, LIST_TOTAL, NUMBER_TOTAL, Event, EventKind, Iteration, Role,
+    backward_inputs, bound_values, function_events, graph_carrier, is_detaching_value,
+    is_grad_disabling, is_scalar_loss, iteration, may_backward, may_reset, number_totals,
+    reads_as_number, step_role, uses_accumulating_framework,
 )
 from nnlint.analysis.names import dotted_name
 from nnlint.finding import Severity
@@ -202,12 +202,21 @@ class LossHistoryKeepsGraph(Rule):
         self._tensor_reads: set[tuple[int, str]] = set()
         #: names that are running totals of numbers in some scope seen so far (a cheap filter)
         self._total_names: set[str] = set()
+        #: (id of scope, total name) -> names its value is assigned to by arithmetic
+        self._flows: dict[tuple[int, str], set[str]] = {}
+        #: id of scope -> its number totals (see number_totals)
+        self._scope_totals: dict[int, dict[str, str]] = {}
 
     def visit_Module(self, node: cst.Module) -> None:
-        self._total_names |= set(number_totals(self.model, None))
+        self._totals_of(None)
 
     def visit_FunctionDef(self, node: cst.FunctionDef) -> None:
-        self._total_names |= set(number_totals(self.model, node))
+        self._totals_of(node)
+
+    def _totals_of(self, function: cst.FunctionDef | None) -> None:
+        totals = number_totals(self.model, function)
+        self._scope_totals[id(self.model.scope_of(function))] = totals
+        self._total_names |= set(totals)
 
     def visit_Name(self, node: cst.Name) -> None:
         if node.value not in self._total_names or not self._is_read(node):
@@ -216,12 +225,14 @@ class LossHistoryKeepsGraph(Rule):
         if found is None:
             return
         scope = found[0]
-        kind = number_totals(self.model, scope.node if scope.parent is not None else None
-                             ).get(node.value)
+        kind = self._scope_totals.get(id(scope), {}).get(node.value)
         if kind is None:
             return
-        if not reads_as_number(self.model, node, self.context.ancestors, kind,
-                               self.model.scope_of(self.context.function)):
+        verdict = reads_as_number(self.model, node, self.context.ancestors, kind,
+                                  self.model.scope_of(self.context.function))
+        if isinstance(verdict, str):
+            self._flows.setdefault((id(scope), node.value), set()).add(verdict)
+        elif not verdict:
             self._tensor_reads.add((id(scope), node.value))
 
     def _is_read(self, node: cst.Name) -> bool:
@@ -242,9 +253,18 @@ class LossHistoryKeepsGraph(Rule):
 
     def leave_Module(self, node: cst.Module) -> None:
         for reported, fields, total, fix in self._pending:
-            if total in self._tensor_reads:
+            if total is None or not self._reads_as_number(total):
                 fix = None
             self.report(reported, autofix=fix, **fields)
+
+    def _reads_as_number(self, total: tuple[int, str]) -> bool:
+        """No read of the total, or of a name computed from it, may need the tensor."""
+        scope, _ = total
+        derived = self._flows.get(total, set())
+        kinds = {self._scope_totals.get(scope, {}).get(name) for name in derived}
+        return total not in self._tensor_reads and kinds <= {DERIVED_TOTAL} and not any(
+            (scope, name) in self._tensor_reads or (scope, name) in self._flows
+            for name in derived)
 
     def visit_AugAssign(self, node: cst.AugAssign) -> None:
         if isinstance(node.operator, cst.AddAssign):
@@ -312,7 +332,8 @@ class LossHistoryKeepsGraph(Rule):
                 module.lstrip(".").split(".")[0] in NON_TORCH_TENSOR_PACKAGES
                 for module in self.model.names.imported_modules):
             return None
-        if total.value not in number_totals(self.model, function):
+        kind = number_totals(self.model, function).get(total.value)
+        if kind not in (NUMBER_TOTAL, LIST_TOTAL):
             return None
         return id(self.model.scope_of(function)), total.value
 
