@@ -9,6 +9,7 @@ and line endings; a file that changed on disk since it was read is not written.
 from __future__ import annotations
 
 import difflib
+from collections import Counter
 import os
 import stat
 import tempfile
@@ -106,10 +107,25 @@ def fix_text(text: str, path: str, settings: Settings, project: ProjectIndex | N
         current = rewritten
     else:
         final = lint_text(current, path, settings, project).findings
-    remaining = {(finding.code, finding.message) for finding in final}
-    applied = [finding for finding in first.findings
-               if finding.fixable and (finding.code, finding.message) not in remaining]
-    return current, applied, final
+    return current, _fixed_findings(first.findings, final), final
+
+
+def _fixed_findings(before: list[Finding], after: list[Finding]) -> list[Finding]:
+    """The fixable findings of `before` that `after` no longer has.
+
+    Lines move when a fix adds an import, so findings are matched by (code, message), as a
+    multiset: two findings with one message, one of them fixed, count as one fixed. The
+    findings left are attributed to unfixable findings first.
+    """
+    left = Counter((finding.code, finding.message) for finding in after)
+    fixed = []
+    for finding in sorted(before, key=lambda finding: finding.fixable):
+        key = (finding.code, finding.message)
+        if left[key]:
+            left[key] -= 1
+        elif finding.fixable:
+            fixed.append(finding)
+    return sorted(fixed, key=Finding.sort_key)
 
 
 def fix_file(path: str, settings: Settings, project: ProjectIndex | None = None,

@@ -211,3 +211,18 @@ def test_text_edits_of_a_fix_make_the_same_text_as_the_tree_rewrite(source):
     tree = with_imports(module.visit(_Replacer({id(target): fix.replacement})), list(fix.imports))
     assert apply_edits(source, edits_of(fix, module, positions)) == tree.code
     assert "F.logsigmoid(x)" in tree.code and tree.code.count("import torch.nn.functional") == 1
+
+
+def test_findings_with_one_message_are_counted_one_by_one():
+    # one message twice, one finding fixable: after fixing, one remains, so one was fixed
+    from nnlint.finding import Finding, Severity
+    from nnlint.fix import _fixed_findings
+
+    def finding(line, fixable):
+        return Finding("x.py", None, line, 1, "NNL602", "n", Severity.WARNING,
+                       "`total` keeps graphs", fixable=fixable)
+
+    fixable, unfixable = finding(4, True), finding(9, False)
+    assert _fixed_findings([fixable, unfixable], [finding(9, False)]) == [fixable]
+    assert _fixed_findings([fixable, unfixable], [finding(4, True), finding(9, False)]) == []
+    assert _fixed_findings([fixable, finding(6, True)], []) == [fixable, finding(6, True)]
