@@ -325,3 +325,14 @@ def test_removing_the_inline_activation_gives_the_loss_the_author_meant():
     assert functional.binary_cross_entropy_with_logits(seal_scores, seals).item() == \
         pytest.approx(functional.binary_cross_entropy(torch.sigmoid(seal_scores), seals).item(),
                       rel=1e-5)
+
+
+def test_the_message_names_the_module_as_the_method_does():
+    from nnlint import lint_source
+
+    source = ("import torch.nn.functional as F\nfrom torch import nn\n\n\n"
+              "class CropNet(nn.Module):\n    def forward(module, crops):\n"
+              "        return F.dropout(crops, 0.2)\n")
+    (finding,) = lint_source(source).findings
+    assert finding.code == "NNL102" and finding.message.endswith(
+        "pass `training=module.training`")

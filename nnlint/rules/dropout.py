@@ -309,6 +309,9 @@ class FunctionalDropoutAlwaysOn(Rule):
         else:
             return
         function, info = method
+        # the module as the method names it (`forward(module, x)` reads `module.training`)
+        parameters = (*function.params.posonly_params, *function.params.params)
+        owner = parameters[0].name.value if parameters else "self"
         share = ""
         rate = rate_argument(found.api, node)
         number = number_value(self.model, rate[0], self.context.function) if rate else None
@@ -316,7 +319,7 @@ class FunctionalDropoutAlwaysOn(Rule):
             share = f" {number:.0%}"
         self.report(node, severity=severity, call=_quote(self.model, node.func),
                     method=f"{info.name}.{function.name.value}", problem=problem,
-                    share=share, fix=f"{keyword}=self.training",
+                    share=share, fix=f"{keyword}={owner}.training",
                     autofix=self._fix(node, found.canonical, switch, function))
 
     def _fix(self, node: cst.Call, canonical: str, switch: cst.Arg | None,
