@@ -185,6 +185,7 @@ def analyse_module(module: cst.Module, text: str, path: str, settings: Settings,
         result.findings = [finding for finding, _ in placed]
         if keep_fixes:
             result.fixes = [(finding, fix) for finding, fix in placed if fix is not None]
+            result.module = module
     return result
 
 

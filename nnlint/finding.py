@@ -6,6 +6,8 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, NamedTuple
 
 if TYPE_CHECKING:
+    import libcst as cst
+
     from nnlint.rules.base import Fix
 
 
@@ -97,3 +99,6 @@ class FileResult:
     #: one-line notices on stderr that do not change the exit status (a notebook of
     #: another language, skipped as a folder's non-Python files are)
     notes: list[str] = field(default_factory=list)
+    #: the parsed module the fixes point into; only with `fixes` (in-process, never pickled
+    #: to a worker's caller: `nnlint fix` runs in one process)
+    module: "cst.Module | None" = None

@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 import libcst as cst
 
 from nnlint import notebooks
-from nnlint.analysis.project import ProjectIndex, content_hash
+from nnlint.analysis.project import ProjectIndex, content_hash, package_of
 from nnlint.config import Settings
 from nnlint.edits import with_imports
 from nnlint.engine import analyse_module, lint_text
@@ -80,34 +80,35 @@ def _non_overlapping(fixes: list[Fix]) -> list[Fix]:
 
 def fix_text(text: str, path: str, settings: Settings, project: ProjectIndex | None = None
              ) -> tuple[str, list[Finding], list[Finding]]:
-    """(fixed text, findings fixed, findings remaining) for one file's text."""
-    first = lint_text(text, path, settings, project)
-    if not any(finding.fixable for finding in first.findings):
-        return text, [], first.findings
-    current, final = text, first.findings
+    """(fixed text, findings fixed, findings remaining) for one file's text.
+
+    Each round parses and analyses once: the check of the text before it (the first check,
+    then the check of each rewrite) supplies the fixes the round applies.
+    """
+    first = lint_text(text, path, settings, project, keep_fixes=True)
+    current, result = text, first
+    package = package_of(path)[0] if os.path.isfile(path) else None
     for _ in range(MAX_ROUNDS):
-        module = parse(current)
-        result = analyse_module(module, current, path, settings, project, keep_fixes=True)
-        final = result.findings
         fixes = _non_overlapping([fix for _, fix in result.fixes])
-        if not fixes:
+        if not fixes or result.module is None:
             break
-        fixed_module = module.visit(_Replacer({id(fix.target): fix.replacement
-                                               for fix in fixes}))
+        fixed_module = result.module.visit(_Replacer({id(fix.target): fix.replacement
+                                                      for fix in fixes}))
         imports = [text for fix in fixes for text in fix.imports]
         if imports:
             fixed_module = with_imports(fixed_module, imports)
         rewritten = fixed_module.code
-        try:
-            parse(rewritten)
-        except ParseFailure:
-            break  # a fix that breaks the syntax is never written
         if rewritten == current:
             break
+        try:
+            module = parse(rewritten)
+        except ParseFailure:
+            break  # a fix that breaks the syntax is never written
         current = rewritten
-    else:
-        final = lint_text(current, path, settings, project).findings
-    return current, _fixed_findings(first.findings, final), final
+        result = analyse_module(module, current, path, settings, project, package,
+                                keep_fixes=True)
+        result.findings.sort(key=Finding.sort_key)
+    return current, _fixed_findings(first.findings, result.findings), result.findings
 
 
 def _fixed_findings(before: list[Finding], after: list[Finding]) -> list[Finding]:

@@ -408,8 +408,9 @@ def check_notebook(path: str, data: bytes | int, settings: "Settings",
 
     Findings carry their cell index and their line inside the cell.
     """
-    from nnlint.engine import (MAX_FILE_BYTES, PARSE_ERROR, FileResult, lint_text,
-                               parse_error_finding)
+    from nnlint.engine import PARSE_ERROR, lint_text, parse_error_finding
+    from nnlint.files import MAX_FILE_BYTES
+    from nnlint.finding import FileResult
     from nnlint.parsing import ParseFailure
 
     def parse_error(error: NotebookError | ParseFailure, cell: int | None = None):
